@@ -1,0 +1,150 @@
+"""Core data types shared by the image side of quietedge.
+
+Axes are (row, col): rows are SEM scan lines running across vertical lines, so the row index
+runs *along* each line and an edge position is a column coordinate.  Column ``j`` has its centre
+at ``j * pixel_size_nm`` nanometres.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+__all__ = ["Micrograph", "EdgeTraces", "REASONS", "REASON_CODES"]
+
+#: Reason codes for invalid rows of an edge (index = code stored in ``EdgeTraces.reason``).
+REASONS = (
+    "ok",
+    "no_convergence",   # iteration cap reached before the step fell below tolerance
+    "left_window",      # the fitted edge lies too close to (or beyond) the end of its window
+    "saturated",        # a pixel of the window sits at the detector's saturation level
+    "low_contrast",     # the row's fitted step is too small or of the wrong sign
+    "non_finite",       # NaN or infinite pixel in the window
+    "too_close",        # neighbouring edge too near for a fit window of the minimum width
+)
+REASON_CODES = {name: code for code, name in enumerate(REASONS)}
+
+
+@dataclass(frozen=True)
+class Micrograph:
+    """A grey-level SEM image with lines running down the columns.
+
+    Attributes
+    ----------
+    pixels : (n_rows, n_cols) ndarray of float64
+        Grey levels (or counts).  Lines are vertical after ``rotated`` is applied.
+    pixel_size_nm : float
+        Size of one pixel in nm (square pixels; rows are spaced by the same amount).
+    source : str
+        File name or description, used in every error message.
+    rotated : bool
+        True when the image was turned by 90 degrees to make horizontal lines vertical.  The
+        SEM scan then ran *along* the lines, and noise correlated along the scan becomes
+        correlation between neighbouring trace samples.
+    polarity : str
+        ``"bright"`` or ``"dark"`` lines, or ``"unknown"`` before location.
+    saturation_level : float or None
+        Grey level at which the detector clips (the integer type's maximum for integer files),
+        or None when unknown.
+    """
+
+    pixels: np.ndarray
+    pixel_size_nm: float
+    source: str = "<array>"
+    rotated: bool = False
+    polarity: str = "unknown"
+    saturation_level: float | None = None
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.pixels.shape
+
+
+@dataclass(frozen=True)
+class EdgeTraces:
+    """Edge positions of one image, one row per scan line.
+
+    Attributes
+    ----------
+    position_nm : (n_edges, n_rows) ndarray
+        Fitted edge position (column coordinate times pixel size), NaN where invalid.
+    sigma_nm : (n_edges, n_rows) ndarray
+        1-sigma uncertainty of ``position_nm`` from the fit covariance, NaN where invalid.
+    valid : (n_edges, n_rows) ndarray of bool
+    reason : (n_edges, n_rows) ndarray of int8
+        Code into :data:`REASONS` (0 where valid).
+    line_index : (n_edges,) ndarray of int
+        Which line an edge belongs to (0, 1, ... from the left).
+    side : (n_edges,) ndarray of str
+        ``"left"`` or ``"right"``.
+    row_spacing_nm : float
+        Distance between neighbouring rows along the line.
+    reduced_chi2 : (n_edges, n_rows) ndarray
+        Weighted residual sum of squares over degrees of freedom, per row.
+    iterations : (n_edges, n_rows) ndarray of int
+        Levenberg-Marquardt iterations of the final pass.
+    contrast_to_noise : (n_edges,) ndarray
+        Step height over noise sd at mid-step, median over rows.
+    edge_flags : (n_edges,) ndarray of str
+        ``""`` or a comma-separated list such as ``"low_contrast"``.
+    detector : str
+        ``"template"``, ``"parametric"``, ``"step"``, ``"threshold"`` or ``"slope"``.
+    source : str
+    noise_model : dict
+        The image-level noise model used for the weights and uncertainties.
+    """
+
+    position_nm: np.ndarray
+    sigma_nm: np.ndarray
+    valid: np.ndarray
+    reason: np.ndarray
+    line_index: np.ndarray
+    side: np.ndarray
+    row_spacing_nm: float
+    reduced_chi2: np.ndarray
+    iterations: np.ndarray
+    contrast_to_noise: np.ndarray
+    edge_flags: np.ndarray
+    detector: str = "template"
+    source: str = "<array>"
+    noise_model: dict = field(default_factory=dict)
+
+    @property
+    def n_edges(self) -> int:
+        return self.position_nm.shape[0]
+
+    @property
+    def n_rows(self) -> int:
+        return self.position_nm.shape[1]
+
+    def reason_counts(self) -> dict[str, int]:
+        """Number of invalid rows per reason, over all edges."""
+        codes, counts = np.unique(self.reason[~self.valid], return_counts=True)
+        return {REASONS[int(c)]: int(n) for c, n in zip(codes, counts)}
+
+    def line_pairs(self) -> list[tuple[int, int]]:
+        """(left edge index, right edge index) for every line that has both edges."""
+        pairs = []
+        for line in np.unique(self.line_index):
+            left = np.flatnonzero((self.line_index == line) & (self.side == "left"))
+            right = np.flatnonzero((self.line_index == line) & (self.side == "right"))
+            if left.size == 1 and right.size == 1:
+                pairs.append((int(left[0]), int(right[0])))
+        return pairs
+
+    def to_frame(self):
+        """Tidy table, one row per (edge, scan row); columns never change with options."""
+        import pandas as pd
+
+        n_e, n_r = self.position_nm.shape
+        return pd.DataFrame({
+            "edge": np.repeat(np.arange(n_e), n_r),
+            "line": np.repeat(self.line_index, n_r),
+            "side": np.repeat(self.side, n_r),
+            "row": np.tile(np.arange(n_r), n_e),
+            "position_nm": self.position_nm.ravel(),
+            "sigma_nm": self.sigma_nm.ravel(),
+            "valid": self.valid.ravel(),
+            "reason": np.asarray(REASONS, dtype=object)[self.reason.ravel()],
+            "reduced_chi2": self.reduced_chi2.ravel(),
+        })

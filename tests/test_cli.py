@@ -1,0 +1,38 @@
+"""The command line, called as main([...]) with temporary folders."""
+from dataclasses import fields
+
+import numpy as np
+import pytest
+
+from edges.io import read_micrograph, read_truth
+from edges.render import SEMSettings
+from roughness.cli import main
+
+
+def test_simulate_writes_images_and_truth(tmp_path):
+    rc = main(["simulate", "--out", str(tmp_path), "--images", "2", "--rows", "64", "--cols", "200",
+               "--dose", "40", "--pixel-size-nm", "0.9", "--seed", "3"])
+    assert rc == 0
+    m = read_micrograph(tmp_path / "sim_001.tif")
+    assert m.pixels.shape == (64, 200) and m.pixel_size_nm == pytest.approx(0.9, rel=1e-6)
+    truth = read_truth(tmp_path / "sim_001.truth.json")
+    assert truth["edge_nm"].shape[1] == 64
+    assert truth["settings"]["dose_per_pixel"] == 40
+
+
+def test_simulate_help_documents_every_setting(capsys):
+    assert main(["simulate", "--help"]) == 0
+    text = capsys.readouterr().out
+    for opt in ("--pixel-size-nm", "--blur-nm", "--dose", "--gain", "--read-noise", "--scan-correlation",
+                "--gradient", "--row-jitter", "--tilt-deg", "--polarity", "--horizontal", "--edge-peak",
+                "--no-shot-noise", "--sigma-nm", "--correlation-length-nm", "--roughness-exponent"):
+        assert opt in text
+    assert "nm" in text and "degrees" in text
+    # no SEMSettings field is left without an option
+    assert len(fields(SEMSettings)) == 18
+
+
+def test_bad_usage_exits_2(tmp_path, capsys):
+    assert main(["simulate"]) == 2
+    assert main(["simulate", "--out", str(tmp_path), "--cd-nm", "80"]) == 2
+    assert "cd_nm=80" in capsys.readouterr().err

@@ -1,0 +1,71 @@
+"""Reading and writing micrographs: round trips and clear errors naming the file."""
+import numpy as np
+import pytest
+
+from edges.io import MicrographError, read_micrograph, read_truth, write_micrograph, write_truth
+
+
+def test_tiff_round_trip_keeps_data_and_pixel_size(tmp_path, rng):
+    data = rng.integers(0, 65535, (37, 53)).astype(float)   # non-square: catches transposes
+    path = write_micrograph(tmp_path / "a.tif", data, pixel_size_nm=0.8, bit_depth=16)
+    m = read_micrograph(path)
+    np.testing.assert_array_equal(m.pixels, data)
+    assert m.pixel_size_nm == pytest.approx(0.8, rel=1e-6)
+    assert m.saturation_level == 65535
+    # the caller's pixel size wins over the tags
+    assert read_micrograph(path, pixel_size_nm=1.25).pixel_size_nm == 1.25
+
+
+def test_float_tiff_and_8bit_png(tmp_path, rng):
+    data = rng.normal(100, 5, (20, 30))
+    m = read_micrograph(write_micrograph(tmp_path / "f.tif", data, pixel_size_nm=2.0, bit_depth=32))
+    np.testing.assert_allclose(m.pixels, data.astype(np.float32))
+    assert m.saturation_level is None
+    png = write_micrograph(tmp_path / "b.png", data, pixel_size_nm=2.0, bit_depth=8)
+    with pytest.raises(MicrographError, match=r"b\.png: no pixel size"):
+        read_micrograph(png)
+    m8 = read_micrograph(png, pixel_size_nm=2.0)
+    np.testing.assert_array_equal(m8.pixels, np.clip(np.rint(data), 0, 255))
+
+
+def test_rgb_is_converted_with_a_warning(tmp_path):
+    import imageio.v3 as iio
+
+    rgb = np.zeros((10, 12, 3), np.uint8)
+    rgb[..., 0] = 200
+    iio.imwrite(tmp_path / "c.png", rgb)
+    with pytest.warns(UserWarning, match="colour image converted"):
+        m = read_micrograph(tmp_path / "c.png", pixel_size_nm=1.0)
+    assert m.pixels.shape == (10, 12)
+    assert m.pixels[0, 0] == pytest.approx(0.299 * 200)
+
+
+def test_bad_files_name_file_and_reason(tmp_path):
+    import tifffile
+
+    (tmp_path / "empty.tif").write_bytes(b"")
+    with pytest.raises(MicrographError, match=r"empty\.tif: file is empty"):
+        read_micrograph(tmp_path / "empty.tif", pixel_size_nm=1)
+    (tmp_path / "junk.tif").write_bytes(b"not a tiff at all" * 10)
+    with pytest.raises(MicrographError, match=r"junk\.tif: cannot be read"):
+        read_micrograph(tmp_path / "junk.tif", pixel_size_nm=1)
+    tifffile.imwrite(tmp_path / "stack.tif", np.zeros((3, 8, 9), np.uint16), photometric="minisblack")
+    with pytest.raises(MicrographError, match=r"stack\.tif: expected a 2-D"):
+        read_micrograph(tmp_path / "stack.tif", pixel_size_nm=1)
+    bad = np.ones((8, 8), np.float32)
+    bad[2, 3] = np.nan
+    tifffile.imwrite(tmp_path / "nan.tif", bad)
+    with pytest.raises(MicrographError, match=r"nan\.tif: 1 pixels are NaN"):
+        read_micrograph(tmp_path / "nan.tif", pixel_size_nm=1)
+    with pytest.raises(MicrographError, match="no such file"):
+        read_micrograph(tmp_path / "missing.tif", pixel_size_nm=1)
+    (tmp_path / "x.bmp").write_bytes(b"BM")
+    with pytest.raises(MicrographError, match="unsupported file type"):
+        read_micrograph(tmp_path / "x.bmp", pixel_size_nm=1)
+
+
+def test_truth_round_trip(tmp_path):
+    truth = {"edge_nm": np.arange(6.0).reshape(2, 3), "cd_nm": 31.5, "orientation": "vertical"}
+    back = read_truth(write_truth(tmp_path / "t.json", truth))
+    np.testing.assert_array_equal(back["edge_nm"], truth["edge_nm"])
+    assert back["cd_nm"] == 31.5 and back["orientation"] == "vertical"
