@@ -1,0 +1,271 @@
+"""Coarse pass: orientation, tilt, polarity and each edge's approximate column.
+
+The row-averaged profile (after following the tilt block by block) gives the levels of spaces and
+line tops; crossings of the mid level give the edges.  Which regions are lines cannot be read from
+a profile (a bright line with bright rims and a bright space between rimmed dark lines look the
+same), so polarity "auto" takes the bright regions as lines and dark lines are asked for by name.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+
+import numpy as np
+from scipy import ndimage
+
+from ._types import Micrograph
+
+__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX"]
+
+#: Smallest half-width of a fit window (pixels either side of the edge) that is still fitted.
+MIN_HALF_WINDOW_PX = 4
+_MAX_TILT_DEG = 3.0
+
+
+class LocateError(ValueError):
+    """No measurable lines in an image; the message names the image and the reason."""
+
+
+@dataclass(frozen=True)
+class EdgeGuess:
+    """One edge's approximate place.
+
+    Attributes
+    ----------
+    column_px : float
+        Column of the edge at the layout's reference row.
+    line_index : int
+    side : str
+        ``"left"`` or ``"right"`` side of its line.
+    rising : bool
+        Grey level increases to the right across the edge.
+    half_window_px : int
+        Pixels either side of the edge that belong to this edge alone (at most the requested
+        half window).
+    flag : str
+        ``""`` or ``"too_close"`` when the neighbouring edge leaves less than
+        :data:`MIN_HALF_WINDOW_PX` for the window.
+    """
+
+    column_px: float
+    line_index: int
+    side: str
+    rising: bool
+    half_window_px: int
+    flag: str = ""
+
+
+@dataclass(frozen=True)
+class LineLayout:
+    """Result of :func:`locate_edges`.
+
+    Attributes
+    ----------
+    micrograph : Micrograph
+        The image with lines vertical (``rotated`` set when it was turned) and ``polarity`` set.
+    edges : tuple of EdgeGuess
+        Whole lines only, left to right, left edge before right edge.
+    tilt_px_per_row : float
+        Column shift of every edge per row.
+    reference_row : float
+    dropped_partial_lines : int
+        Lines cut by the image border and left out.
+    profile : ndarray
+        Tilt-aligned row-averaged profile (grey levels).
+    levels : tuple of float
+        (space level, line level) of the profile.
+    """
+
+    micrograph: Micrograph
+    edges: tuple
+    tilt_px_per_row: float
+    reference_row: float
+    dropped_partial_lines: int
+    profile: np.ndarray
+    levels: tuple
+
+    def guess_columns(self, rows) -> np.ndarray:
+        """(n_edges, len(rows)) per-row guesses that follow the tilt."""
+        rows = np.asarray(rows, float)
+        c = np.array([e.column_px for e in self.edges])
+        return c[:, None] + self.tilt_px_per_row * (rows[None, :] - self.reference_row)
+
+
+def _validate(m: Micrograph) -> None:
+    px = m.pixels
+    if px.ndim != 2:
+        raise LocateError(f"{m.source}: expected a 2-D image, got shape {px.shape}")
+    if min(px.shape) < 16:
+        raise LocateError(f"{m.source}: image of {px.shape[0]} x {px.shape[1]} pixels is too small (16 x 16 at least)")
+    if not np.all(np.isfinite(px)):
+        raise LocateError(f"{m.source}: image holds NaN or infinite pixels")
+
+
+def _block_shift(a: np.ndarray, b: np.ndarray, max_shift: int) -> float:
+    """Subpixel shift s such that b(x) ~ a(x - s), by cross-correlating gradients."""
+    ga, gb = np.gradient(a), np.gradient(b)
+    ga -= ga.mean()
+    gb -= gb.mean()
+    lags = np.arange(-max_shift, max_shift + 1)
+    n = a.size
+    cc = np.array([np.dot(ga[max(0, -k):n - max(0, k)], gb[max(0, k):n - max(0, -k)]) for k in lags])
+    i = int(np.argmax(cc))
+    if 0 < i < lags.size - 1:
+        den = cc[i - 1] - 2 * cc[i] + cc[i + 1]
+        frac = 0.5 * (cc[i - 1] - cc[i + 1]) / den if den < 0 else 0.0
+    else:
+        frac = 0.0
+    return float(lags[i] + frac)
+
+
+def _tilt(px: np.ndarray) -> tuple[float, float]:
+    n_rows = px.shape[0]
+    n_blocks = int(min(16, n_rows // 32))
+    ref = 0.5 * (n_rows - 1)
+    if n_blocks < 3:
+        return 0.0, ref
+    edges_ = np.linspace(0, n_rows, n_blocks + 1).astype(int)
+    prof = [ndimage.gaussian_filter1d(px[a:b].mean(axis=0), 1.0) for a, b in zip(edges_[:-1], edges_[1:])]
+    centres = 0.5 * (edges_[:-1] + edges_[1:] - 1)
+    step = np.diff(centres).max()
+    max_shift = int(math.ceil(step * math.tan(math.radians(_MAX_TILT_DEG)))) + 2
+    shifts = np.concatenate([[0.0], np.cumsum([_block_shift(prof[i], prof[i + 1], max_shift)
+                                               for i in range(n_blocks - 1)])])
+    slope = np.polyfit(centres, shifts, 1)[0]
+    if abs(slope) > math.tan(math.radians(_MAX_TILT_DEG)):
+        slope = 0.0   # no consistent tilt (e.g. a featureless image); report none
+    return float(slope), ref
+
+
+def _aligned_profile(px: np.ndarray, tilt: float, ref: float) -> np.ndarray:
+    n_rows, n_cols = px.shape
+    if tilt == 0.0:
+        return px.mean(axis=0)
+    block = max(1, int(1.0 / max(abs(tilt), 1e-9) / 4))      # rows per quarter-pixel of drift
+    block = min(block, n_rows)
+    cols = np.arange(n_cols, dtype=float)
+    acc = np.zeros(n_cols)
+    weight = np.zeros(n_cols)
+    for start in range(0, n_rows, block):
+        rows = px[start:start + block]
+        shift = tilt * (start + 0.5 * (rows.shape[0] - 1) - ref)
+        prof = np.interp(cols + shift, cols, rows.mean(axis=0), left=np.nan, right=np.nan)
+        ok = np.isfinite(prof)
+        acc[ok] += prof[ok] * rows.shape[0]
+        weight[ok] += rows.shape[0]
+    out = np.full(n_cols, np.nan)
+    out[weight > 0] = acc[weight > 0] / weight[weight > 0]
+    return out
+
+
+def _crossings(profile: np.ndarray, level: float) -> list[tuple[float, bool]]:
+    """Subpixel columns where the profile crosses ``level`` and whether it rises there."""
+    d = profile - level
+    ok = np.isfinite(d[:-1]) & np.isfinite(d[1:])
+    idx = np.flatnonzero(ok & (np.sign(d[:-1]) != np.sign(d[1:])) & (d[:-1] != 0))
+    return [(k + d[k] / (d[k] - d[k + 1]), bool(d[k + 1] > d[k])) for k in idx]
+
+
+def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation: str = "auto",
+                 window_px: int = 21) -> LineLayout:
+    """Find whole lines and their edges.
+
+    Parameters
+    ----------
+    micrograph : Micrograph
+    polarity : {"auto", "bright", "dark"}
+        Whether lines are brighter or darker than the spaces; ``"auto"`` means bright.
+    orientation : {"auto", "vertical", "horizontal"}
+        Line direction in the image; horizontal images are transposed (``rotated=True``).
+    window_px : int
+        Requested fit window (odd, >= 2 * MIN_HALF_WINDOW_PX + 1); sets how far from the border
+        an edge must lie and which edges are too close to their neighbours.
+
+    Raises
+    ------
+    LocateError
+        No whole line, or no contrast between lines and spaces.
+    """
+    if polarity not in ("auto", "bright", "dark"):
+        raise ValueError(f"polarity={polarity!r}: must be 'auto', 'bright' or 'dark'")
+    if orientation not in ("auto", "vertical", "horizontal"):
+        raise ValueError(f"orientation={orientation!r}: must be 'auto', 'vertical' or 'horizontal'")
+    if window_px % 2 != 1 or window_px < 2 * MIN_HALF_WINDOW_PX + 1:
+        raise ValueError(f"window_px={window_px}: must be an odd integer >= {2 * MIN_HALF_WINDOW_PX + 1}")
+    _validate(micrograph)
+    px = micrograph.pixels
+    if orientation == "auto":
+        horizontal = np.var(px.mean(axis=1)) > np.var(px.mean(axis=0))
+    else:
+        horizontal = orientation == "horizontal"
+    if horizontal:
+        px = np.ascontiguousarray(px.T)
+        micrograph = replace(micrograph, pixels=px, rotated=not micrograph.rotated)
+    n_rows, n_cols = px.shape
+    tilt, ref = _tilt(px)
+    profile = _aligned_profile(px, tilt, ref)
+    finite = np.isfinite(profile)
+    light = profile.copy()
+    light[finite] = ndimage.gaussian_filter1d(profile[finite], 1.0)
+    heavy = light.copy()
+    heavy[finite] = ndimage.gaussian_filter1d(profile[finite], 3.0)
+    # profile noise: pixel noise from row-to-row differences, averaged over the rows
+    pix_sd = np.median(np.abs(np.diff(px[:, ::4], axis=0))) / (0.6745 * math.sqrt(2))
+    prof_sd = pix_sd / math.sqrt(n_rows)
+    vals = heavy[finite]
+    lo, hi = np.percentile(vals, 10), np.percentile(vals, 90)
+    if not hi - lo > max(10 * prof_sd, 1e-12):
+        raise LocateError(f"{micrograph.source}: no lines found (profile contrast {hi - lo:.3g} against "
+                          f"noise {prof_sd:.3g} grey levels)")
+    mid = 0.5 * (lo + hi)
+    coarse = _crossings(heavy, mid)
+    if len(coarse) < 2:
+        raise LocateError(f"{micrograph.source}: no lines found (fewer than two edges in the profile)")
+    crossings = []
+    for col, rising in coarse:   # refine on the lightly smoothed profile, nearest crossing
+        fine = [c for c, r in _crossings(light[max(0, int(col) - 4):int(col) + 6], mid) if r == rising]
+        crossings.append(((min(fine, key=lambda c: abs(c + max(0, int(col) - 4) - col)) + max(0, int(col) - 4))
+                          if fine else col, rising))
+    if polarity == "auto":
+        # A blurred profile cannot tell a bright line with bright rims from a bright space
+        # bounded by the rims of dark lines: both rise, overshoot and settle.  "auto" therefore
+        # takes the brighter regions as the lines; dark lines need polarity="dark".
+        polarity = "bright"
+    # a line starts where the profile enters the line level: rising for bright lines
+    starts_rising = polarity == "bright"
+    half_req = window_px // 2
+    margin = half_req + 2 + abs(tilt) * 0.5 * n_rows
+    lines, dropped, i = [], 0, 0
+    while i < len(crossings):
+        col, rising = crossings[i]
+        if rising == starts_rising and i + 1 < len(crossings) and crossings[i + 1][1] != starts_rising:
+            left, right = col, crossings[i + 1][0]
+            if left - margin < 0 or right + margin > n_cols - 1:
+                dropped += 1
+            else:
+                lines.append((left, right))
+            i += 2
+        else:
+            if rising != starts_rising and not lines and i == 0:
+                dropped += 1      # a line cut by the left border
+            i += 1
+    if not lines:
+        raise LocateError(f"{micrograph.source}: no whole line inside the image "
+                          f"({dropped} cut by the border)")
+    cols = [c for pair in lines for c in pair]
+    guesses = []
+    for k, c in enumerate(cols):
+        gaps = [abs(c - cols[j]) for j in (k - 1, k + 1) if 0 <= j < len(cols)]
+        # outer neighbours beyond the kept lines (dropped partial lines) also bound the window
+        others = [abs(c - x) for x, _ in crossings if abs(c - x) > 0.5]
+        near = min(gaps + others) if (gaps or others) else np.inf
+        half = int(min(half_req, math.floor(0.5 * near)))
+        side = "left" if k % 2 == 0 else "right"
+        rising = (side == "left") == (polarity == "bright")
+        guesses.append(EdgeGuess(column_px=float(c), line_index=k // 2, side=side, rising=rising,
+                                 half_window_px=max(half, 0),
+                                 flag="too_close" if half < MIN_HALF_WINDOW_PX else ""))
+    micrograph = replace(micrograph, polarity=polarity)
+    return LineLayout(micrograph=micrograph, edges=tuple(guesses), tilt_px_per_row=tilt,
+                      reference_row=ref, dropped_partial_lines=dropped, profile=profile,
+                      levels=(hi, lo) if polarity == "dark" else (lo, hi))
