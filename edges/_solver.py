@@ -28,7 +28,7 @@ class RowFit:
         self.n_used = np.zeros(n, np.int64)
         self.iterations = np.zeros(n, np.int64)
         self.converged = np.zeros(n, bool)
-        self.lag_sums = None                 # (n, n_lags + 1) sums of v_i v_(i+l), v = sqrt(w) J_p
+        self.lag_sums = None                 # (n, n_lags + 1) sums of q_i var_i q_(i+l), q = w J_p
 
 
 def _sums(y, cols, w, table, edge, x0, with_slope=True):
@@ -63,7 +63,8 @@ def _gauss_newton(s, a, b, det, Sw):
 
 
 def solve_rows(y, cols, w, table, edge, x_init, *, max_iterations=30, tolerance_px=1e-4,
-               grid_offsets_px=None, max_step_px=2.0, n_lags=0, chunk_rows=4096) -> RowFit:
+               grid_offsets_px=None, max_step_px=2.0, n_lags=0, lag_variance=None,
+               chunk_rows=4096) -> RowFit:
     """Fit x0, gain and offset of every row.
 
     Parameters
@@ -78,7 +79,10 @@ def solve_rows(y, cols, w, table, edge, x_init, *, max_iterations=30, tolerance_
     grid_offsets_px : sequence of float, optional
         Try these offsets from ``x_init`` first and start from the best (coarse pass).
     n_lags : int
-        Also return sums of v_i v_(i+l), l = 0..n_lags, for a sandwich covariance.
+        Also return sums of q_i var_i q_(i+l), q = w J_p, l = 0..n_lags, for the sandwich
+        covariance of a causally filtered noise, Cov(e_i, e_(i+l)) = a^l var_i.
+    lag_variance : (n, width) ndarray
+        The pixel noise variances ``var`` for those sums (required with ``n_lags``).
     """
     n = y.shape[0]
     out = RowFit(n)
@@ -87,12 +91,13 @@ def solve_rows(y, cols, w, table, edge, x_init, *, max_iterations=30, tolerance_
     for start in range(0, n, chunk_rows):
         sl = slice(start, min(n, start + chunk_rows))
         _solve_chunk(y[sl], cols[sl], w[sl], table, edge[sl], x_init[sl], out, sl,
-                     max_iterations, tolerance_px, grid_offsets_px, max_step_px, n_lags)
+                     max_iterations, tolerance_px, grid_offsets_px, max_step_px, n_lags,
+                     None if lag_variance is None else lag_variance[sl])
     return out
 
 
 def _solve_chunk(y, cols, w, table, edge, x_init, out, sl, max_iterations, tolerance_px,
-                 grid_offsets_px, max_step_px, n_lags):
+                 grid_offsets_px, max_step_px, n_lags, lag_variance):
     Sw = w.sum(1)
     with np.errstate(invalid="ignore", divide="ignore"):
         ymean = np.einsum("ij,ij->i", w, y) / Sw
@@ -157,6 +162,7 @@ def _solve_chunk(y, cols, w, table, edge, x_init, out, sl, max_iterations, toler
     if n_lags:
         mu, dmu = table.evaluate(edge, cols - x[:, None])
         jp = -b[:, None] * dmu - alpha[:, None] - beta[:, None] * mu
-        v = np.sqrt(w) * jp
-        out.lag_sums[sl] = np.stack([np.einsum("ij,ij->i", v[:, :v.shape[1] - l], v[:, l:])
+        q = w * jp
+        qv = q * lag_variance
+        out.lag_sums[sl] = np.stack([np.einsum("ij,ij->i", qv[:, :q.shape[1] - l], q[:, l:])
                                      for l in range(n_lags + 1)], axis=1)

@@ -8,11 +8,12 @@ Passes over all rows of all edges at once (batched, no loop over rows):
    the template adds a smoothed correction), fitted once per edge;
 3. **unweighted**: position, gain, offset per row with that shape; the residuals give the
    image's noise model ``var = c0 + c1 * signal`` (shot noise makes the variance follow the
-   signal) and the shape is refitted with the alignment scatter deconvolved;
+   signal) and the shape is refitted, corrected for the self-alignment sharpening;
 4. **weighted**: weights ``1 / var(model of pass 3)``; each position's variance is
-   ``1 / (J_p^T W J_p)``, or the sandwich ``v^T R v / (v^T v)^2`` when the noise is correlated
-   along the scan, R estimated from the residuals by the method of moments (the projection of
-   the fit on the residuals is undone exactly in expectation).
+   ``1 / (J_p^T W J_p)``, or the sandwich ``q^T C q / (J_p^T W J_p)^2`` (q = W J_p) when the
+   noise is correlated along the scan, C that of a first-order detector filter,
+   C_(i,i+l) = a^l var_i, with a estimated from the residuals by the method of moments (the
+   projection of the fit on the residuals is undone exactly in expectation).
 
 Edges whose median contrast-to-noise falls below :data:`LOW_CONTRAST_CNR` are flagged
 ``low_contrast``: there the linearised covariance under-states the real scatter.
@@ -29,11 +30,14 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from scipy import signal
 
 from ._solver import solve_rows
 from ._types import REASON_CODES, EdgeTraces, Micrograph
 from .locate import LineLayout, locate_edges
-from .profiles import EdgeShape, correct_self_alignment, fit_shape, parametric_profile, smoothed_correction, tabulate
+from .profiles import (EdgeShape, correct_self_alignment, fit_shape, fit_shift, half_level_offset,
+                       parametric_profile,
+                       smoothed_correction, tabulate)
 
 __all__ = ["fit_edges", "LOW_CONTRAST_CNR", "EdgeWindows", "gather_windows"]
 
@@ -123,36 +127,73 @@ def _aligned_profiles(win, res, ok, hmax):
     return centres, mean
 
 
-def _shapes(centres, mean, kind, starts, alignment_var_px2=None):
-    """Shape fit per edge; returns callables for the table, shapes and centre shifts."""
-    funcs, shapes, shifts = [], [], []
-    for e in range(mean.shape[0]):
+def _shapes(centres, mean, kind, groups, starts=None, alignment_var_px2=None):
+    """One shape per group of edges (left: +1, right: -1), fitted on the group's pooled profile.
+
+    The beam and material are common to the image, so pooling the edges of one side cuts the
+    noise of the shape; each edge then gets only its own shift of the step centre, with the
+    shape fixed (a free peak beside a free step centre trades one against the other).
+    Returns per-edge callables for the table, per-edge shapes and per-edge shifts.
+    """
+    n_e = mean.shape[0]
+    funcs, shapes, shifts = [None] * n_e, [None] * n_e, np.zeros(n_e)
+    for g in np.unique(groups):
+        members = np.flatnonzero(groups == g)
+        pooled = np.nanmean(mean[members], axis=0) if members.size else None
+        start = None if starts is None else starts[members[0]]
         try:
-            shape, shift = fit_shape(centres, mean[e], kind="step" if kind == "step" else "parametric",
-                                     start=starts[e])
+            fitted, _ = fit_shape(centres, pooled, kind="step" if kind == "step" else "parametric", start=start,
+                                  peak_side=int(g))
+            own = np.zeros(members.size)
+            for _ in range(2):   # re-pool with each edge moved onto the common reference
+                prof = lambda u, sh=fitted: parametric_profile(u, sh)
+                own = np.array([_safe_shift(centres, mean[e], prof) for e in members])
+                pooled = np.nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
+                                     for e, sh_ in zip(members, own)], axis=0)
+                fitted, extra = fit_shape(centres, pooled, kind="step" if kind == "step" else "parametric",
+                                          start=fitted, peak_side=int(g))
+                own = own + extra
         except (RuntimeError, ValueError):
-            shape, shift = starts[e], 0.0
-        fitted = shape
+            fitted, own = (start or EdgeShape(2.0)), np.zeros(members.size)
+        shape = fitted
         if alignment_var_px2 is not None:
-            shape = correct_self_alignment(shape, alignment_var_px2[e])
+            shape = correct_self_alignment(fitted, float(np.nanmean(alignment_var_px2[members])))
+        corr = None
         if kind == "template":
-            resid = mean[e] - parametric_profile(centres - shift, fitted)
-            corr = smoothed_correction(centres - shift, resid)
-            f = (lambda u, derivative=False, sh=shape, c=corr:
-                 parametric_profile(u, sh, derivative=derivative) + c(u, derivative=derivative))
+            aligned = np.nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
+                                  for e, sh_ in zip(members, own)], axis=0)
+            mu = parametric_profile(centres, fitted)
+            good = np.isfinite(aligned)
+            gain, offset = np.polyfit(mu[good], aligned[good], 1)   # the pooled z is not exactly 0..1
+            corr = smoothed_correction(centres, (aligned - offset) / gain - mu)
+        if corr is None:
+            full = lambda u, derivative=False, s_=shape: parametric_profile(u, s_, derivative=derivative)
         else:
-            f = (lambda u, derivative=False, sh=shape: parametric_profile(u, sh, derivative=derivative))
-        funcs.append(f)
-        shapes.append(shape)
-        shifts.append(shift)
-    return funcs, shapes, np.array(shifts)
+            full = (lambda u, derivative=False, s_=shape, c=corr:
+                    parametric_profile(u, s_, derivative=derivative) + c(u, derivative=derivative))
+        ref = half_level_offset(full)
+        for e, sh_ in zip(members, own):
+            funcs[e] = lambda u, derivative=False, f=full, r=ref: f(u + r, derivative=derivative)
+            shapes[e], shifts[e] = shape, sh_ + ref
+    return funcs, shapes, shifts
 
 
-def _noise_model(win, res, ok):
+def _safe_shift(centres, z, profile):
+    try:
+        return fit_shift(centres, z, profile)
+    except (RuntimeError, ValueError):
+        return 0.0
+
+
+def _noise_model(win, res, ok, scan_filter=0.0):
     """var(signal) = c0 + c1 * signal from unweighted residuals, pooled over the image.
 
     Each squared residual is divided by (1 - h_ii), h the row's hat matrix for (x0, offset,
-    gain), so that pixels of high leverage (on the edge) are not under-counted.
+    gain), so that pixels of high leverage (on the edge) are not under-counted.  With a
+    first-order detector filter of coefficient a along the scan (left to right), a pixel's
+    noise variance follows the *filtered* signal (1 - a^2) sum_k a^(2k) m_(n-k), which is what
+    is regressed on then (shot noise from a bright side spills into the dark side).
+    Returns c0, c1 and the signal that the variance is a function of, per pixel.
     """
     mu, dmu = res.table.evaluate(win.edge, win.cols - res.x0[:, None])
     model = res.offset[:, None] + res.gain[:, None] * mu
@@ -165,6 +206,9 @@ def _noise_model(win, res, ok):
     with np.errstate(divide="ignore", invalid="ignore"):
         r2 = (win.y - model) ** 2 / (1.0 - lev)
     ok = good_rows
+    if scan_filter > 0:
+        a2 = scan_filter ** 2
+        model, _ = signal.lfilter([1 - a2], [1.0, -a2], model, axis=1, zi=a2 * model[:, :1])
     use = ok[:, None] & win.mask & (lev < 0.95)
     m, v = model[use], r2[use]
     if m.size < 50:
@@ -303,13 +347,18 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         ok = np.isfinite(res.x0) & inside & (np.abs(res.gain) > 0)
         centres = _centre_lines(res.x0.reshape(idx.size, n_rows), ok.reshape(idx.size, n_rows), guess)
         win = EdgeWindows(m.pixels, centres, half, sat)
-        # 2. shape from the aligned mean profile
+        # 2. shape from the mean profile aligned on the smooth centre lines: blurred by the
+        #    roughness, but free of the distortion that self-alignment on a wrong (plain-step)
+        #    model leaves, which can favour a step hidden under a bright rim
+        x_coarse = res.x0.copy()
+        res.x0 = centres.ravel().copy()
         ub, mean = _aligned_profiles(win, res, ok, hmax)
-        funcs, shapes, shift = _shapes(ub, mean, model, [EdgeShape(2.0)] * idx.size)
+        groups = np.array([1 if layout.edges[i].side == "left" else -1 for i in idx])
+        funcs, shapes, shift = _shapes(ub, mean, model, groups)
         table = tabulate(funcs, 3 * hmax + 6)
         # 3. unweighted pass; shape again with the alignment scatter removed; unweighted pass
         #    with that shape, whose residuals give the noise model and the scan correlation
-        x_start = np.where(ok, res.x0, centres.ravel()) + shift[e_idx]
+        x_start = np.where(ok, x_coarse, centres.ravel()) + shift[e_idx]
         res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
                          max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
         ok = _row_ok(res, win)
@@ -318,7 +367,8 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
             align_var = np.array([np.nanmean(np.where(ok, s2 / res.info, np.nan)[e_idx == e])
                                   for e in range(idx.size)])
         ub, mean = _aligned_profiles(win, res, ok, hmax)
-        funcs, shapes, shift2 = _shapes(ub, mean, model, shapes, alignment_var_px2=np.nan_to_num(align_var))
+        funcs, shapes, shift2 = _shapes(ub, mean, model, groups, starts=shapes,
+                                        alignment_var_px2=np.nan_to_num(align_var))
         table = tabulate(funcs, 3 * hmax + 6)
         x_start = np.where(ok, res.x0, centres.ravel()) + shift2[e_idx]
         res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
@@ -330,17 +380,23 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         gamma0, a_scan, a_se = 1.0, 0.0, np.inf
         if noise_correlation == "auto":
             gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var)
+            if a_scan > 4 * a_se:     # refit the variance on the filtered signal, then R again
+                c0, c1, model_c = _noise_model(win, res, ok, scan_filter=a_scan)
+                var = np.maximum(c0 + c1 * model_c, 1e-12)
+                gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var)
         correlated = abs(a_scan) > 4 * a_se
         n_lags = 2 * hmax if correlated else 0
         # 4. weighted pass
         weight = win.mask / var
         x_start = np.where(ok, res.x0, centres.ravel())
         res = solve_rows(win.y, win.cols, weight, table, e_idx, x_start, max_iterations=max_iterations,
-                         tolerance_px=tolerance_px, chunk_rows=chunk_rows, n_lags=n_lags)
+                         tolerance_px=tolerance_px, chunk_rows=chunk_rows, n_lags=n_lags,
+                         lag_variance=var if correlated else None)
         if correlated:
+            # sandwich for a causal first-order filter: Cov(e_i, e_(i+l)) = a^l var_i
             ls = res.lag_sums
             num = ls[:, 0] + 2 * (ls[:, 1:] * a_scan ** np.arange(1, n_lags + 1)).sum(1)
-            var_x = gamma0 * num / ls[:, 0] ** 2
+            var_x = gamma0 * num / res.info ** 2
         else:
             var_x = gamma0 / res.info
         ok = _row_ok(res, win)

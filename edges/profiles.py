@@ -11,10 +11,14 @@ Parametric model (the pixel-integrated blurred step with an edge peak)::
 
 i.e. a Gaussian-blurred unit step (blur ``s``) and a Gaussian peak (height ``h`` relative to the
 step, width ``w``, centred ``d`` from the step), both averaged over the one-pixel-wide pixel.
-**Reference point:** ``x0`` is the centre of the blurred step, which is where the physical edge of
-a rendered step lies whatever the peak.  The template model keeps the same reference: it is the
-parametric fit of the image's own aligned mean edge profile plus a smoothed correction for what
-the parametric form misses, so both models report the same point of the profile.
+**Reference point** (what a reported edge position means): the column where the edge's mean
+profile is half-way between its two plateaus (:func:`half_level_offset`), the crossing nearest
+the step.  For a plain blurred step this is the step centre, i.e. the physical edge of a
+rendered step; with a bright rim it moves by a constant towards the rim.  The template model is
+the parametric fit of the image's own aligned mean profile plus a smoothed correction for what
+the parametric form misses; both models use the same reference.  (Parametrically, ``mu``'s
+``u = 0`` is the centre of the blurred step, which is where the physical edge of
+a rendered step lies whatever the peak.
 
 Shapes are fitted once per edge (on the row-aligned mean profile); rows then fit only position,
 gain and offset.
@@ -27,7 +31,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, optimize, special
 
-__all__ = ["EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "tabulate"]
+__all__ = ["EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "fit_shift", "tabulate",
+           "correct_self_alignment", "half_level_offset"]
 
 _SQRT2PI = math.sqrt(2 * math.pi)
 GRID_STEP_PX = 1.0 / 32.0
@@ -123,38 +128,88 @@ def tabulate(functions, half_range_px: float) -> ProfileTable:
     return ProfileTable(start_px=-half_range_px, step_px=GRID_STEP_PX, values=values, slopes=slopes)
 
 
-def fit_shape(u, z, *, kind: str, start: EdgeShape) -> tuple[EdgeShape, float]:
+def _profile_model(uu, x0, a, b, s, h=0.0, d=0.0, w=1.0):
+    """offset + gain * mu(u - x0); the peak offset d is measured from the step centre."""
+    return a + b * parametric_profile(uu - x0, EdgeShape(s, h, d, w))
+
+
+def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int = 0) -> tuple[EdgeShape, float]:
     """Fit a shape to an aligned, normalised mean profile z(u) (step from ~0 to ~1).
 
     Returns the shape and the shift of its step centre from u = 0 (to add to positions).
-    ``kind`` is ``"parametric"`` (step and peak) or ``"step"`` (no peak).
+    ``kind`` is ``"parametric"`` (step and peak) or ``"step"`` (no peak).  Without ``start``
+    the peaked model is fitted from several starts (step centre and peak on either side) and
+    the best least-squares fit is kept: a bright rim beside a step has a second optimum with
+    the step hidden under the rim.  ``peak_side`` (+1 or -1, 0 for free) keeps the peak on the
+    side of the step where the line lies (+1 for a line's left edge, whose line is at larger
+    columns), which rules that optimum out.  With ``start`` the fit starts there only.
     """
     ok = np.isfinite(z)
     u, z = u[ok], z[ok]
-
-    def model(uu, x0, a, b, s, h=0.0, d=0.0, w=1.0):   # peak offset d measured from the step centre
-        return a + b * parametric_profile(uu - x0, EdgeShape(s, h, d, w))
-
-    step_p0 = [0.0, 0.0, 1.0, start.blur_px]
-    step_lo, step_hi = [-5, -1, 0.2, 0.15], [5, 1, 5, 30]
-    if kind == "step" or not start.peak_height:
-        step_p, _ = optimize.curve_fit(model, u, z, p0=step_p0, bounds=(step_lo, step_hi), maxfev=4000)
-        if kind == "step":
-            return EdgeShape(float(step_p[3])), float(step_p[0])
-        # peak start: the largest residual of the step fit near the edge
-        near = np.abs(u - step_p[0]) < 3 * step_p[3] + 4
-        resid = np.where(near, z - model(u, *step_p), 0.0)
-        k = int(np.argmax(np.abs(resid)))
-        p0 = [*step_p, resid[k] / step_p[2], u[k] - step_p[0], 1.0]
+    step_lo, step_hi = [-8, -1, 0.2, 0.15], [8, 1, 5, 30]
+    if start is not None and (kind == "step" or start.peak_height):
+        p_init = [[0.0, 0.0, 1.0, start.blur_px] + ([start.peak_height, start.peak_offset_px,
+                                                     start.peak_width_px] if kind != "step" else [])]
     else:
-        p0 = [0.0, 0.0, 1.0, start.blur_px, start.peak_height, start.peak_offset_px, start.peak_width_px]
-    reach = 3 * p0[3] + 4
-    lower = [-5, -1, 0.2, 0.15, -5, -reach, 0.3]
-    upper = [5, 1, 5, 30, 5, reach, 8]
-    p0 = np.clip(p0, np.add(lower, 1e-9), np.subtract(upper, 1e-9))
-    popt, _ = optimize.curve_fit(model, u, z, p0=p0, bounds=(lower, upper), maxfev=4000)
-    x0, _, _, s, h, d, w = (float(v) for v in popt)
+        sp, _ = optimize.curve_fit(_profile_model, u, z, p0=[0.0, 0.0, 1.0, 2.0],
+                                   bounds=(step_lo, step_hi), maxfev=4000)
+        if kind == "step":
+            return EdgeShape(float(sp[3])), float(sp[0])
+        near = np.abs(u - sp[0]) < 3 * sp[3] + 4
+        resid = np.where(near, z - _profile_model(u, *sp), 0.0)
+        k = int(np.argmax(np.abs(resid)))
+        p_init = [[*sp, resid[k] / sp[2], u[k] - sp[0], 1.0]]
+        sides = (peak_side,) if peak_side else (-1, 1)
+        for dx in (-4.0, 0.0, 4.0):
+            for dd in (1.0, 3.0):
+                for sd in sides:
+                    p_init.append([sp[0] + dx, sp[1], sp[2], sp[3], 0.5, sd * dd, 1.5])
+    best, best_cost = None, np.inf
+    for p0 in p_init:
+        if kind == "step":
+            lower, upper = step_lo, step_hi
+        else:
+            reach = 3 * p0[3] + 8
+            lower = step_lo + [-5, 0.0 if peak_side > 0 else -reach, 0.3]
+            upper = step_hi + [5, 0.0 if peak_side < 0 else reach, 8]
+        p0 = np.clip(p0, np.add(lower, 1e-9), np.subtract(upper, 1e-9))
+        try:
+            popt, _ = optimize.curve_fit(_profile_model, u, z, p0=p0, bounds=(lower, upper), maxfev=4000)
+        except RuntimeError:
+            continue
+        cost = np.sum((z - _profile_model(u, *popt)) ** 2)
+        if cost < best_cost:
+            best, best_cost = popt, cost
+    if best is None:
+        raise RuntimeError("no shape fit converged")
+    if kind == "step":
+        return EdgeShape(float(best[3])), float(best[0])
+    x0, _, _, s, h, d, w = (float(v) for v in best)
     return EdgeShape(s, h, d, w), x0
+
+
+def half_level_offset(profile, *, reach_px: float = 12.0) -> float:
+    """u where ``profile(u)`` (rising from 0 to 1) crosses 1/2, the crossing nearest u = 0.
+
+    This is the edge's **reference point**.  It depends only on the profile, not on how a
+    parametric form splits it into step and peak (a rim beside a step is nearly degenerate with
+    a shifted step under the rim, yet both give the same half-level point).
+    """
+    u = np.linspace(-reach_px, reach_px, int(64 * reach_px) + 1)
+    d = profile(u) - 0.5
+    k = np.flatnonzero(np.sign(d[:-1]) != np.sign(d[1:]))
+    if k.size == 0:
+        return 0.0
+    k = k[np.argmin(np.abs(u[k]))]
+    return float(optimize.brentq(lambda x: float(profile(np.array([x]))[0]) - 0.5, u[k], u[k + 1]))
+
+
+def fit_shift(u, z, profile) -> float:
+    """Step-centre shift of a normalised mean profile for a fixed shape ``profile(u)``."""
+    ok = np.isfinite(z)
+    u, z = u[ok], z[ok]
+    popt, _ = optimize.curve_fit(lambda uu, x0, a, b: a + b * profile(uu - x0), u, z, p0=[0.0, 0.0, 1.0])
+    return float(popt[0])
 
 
 def correct_self_alignment(shape: EdgeShape, variance_px2: float) -> EdgeShape:
