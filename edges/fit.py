@@ -32,10 +32,11 @@ import math
 import numpy as np
 from scipy import signal
 
+from ._nanstats import nanmean, nanmedian
 from ._solver import solve_rows
 from ._types import REASON_CODES, EdgeTraces, Micrograph
 from .locate import LineLayout, locate_edges
-from .profiles import (EdgeShape, correct_self_alignment, fit_shape, fit_shift, half_level_offset,
+from .profiles import (EdgeShape, adjust_blur, fit_shape, fit_shift, half_level_offset,
                        parametric_profile,
                        smoothed_correction, tabulate)
 
@@ -127,7 +128,7 @@ def _aligned_profiles(win, res, ok, hmax):
     return centres, mean
 
 
-def _shapes(centres, mean, kind, groups, starts=None, alignment_var_px2=None):
+def _shapes(centres, mean, kind, groups, starts=None, blur_change_px2=None):
     """One shape per group of edges (left: +1, right: -1), fitted on the group's pooled profile.
 
     The beam and material are common to the image, so pooling the edges of one side cuts the
@@ -139,7 +140,7 @@ def _shapes(centres, mean, kind, groups, starts=None, alignment_var_px2=None):
     funcs, shapes, shifts = [None] * n_e, [None] * n_e, np.zeros(n_e)
     for g in np.unique(groups):
         members = np.flatnonzero(groups == g)
-        pooled = np.nanmean(mean[members], axis=0) if members.size else None
+        pooled = nanmean(mean[members], axis=0) if members.size else None
         start = None if starts is None else starts[members[0]]
         try:
             fitted, _ = fit_shape(centres, pooled, kind="step" if kind == "step" else "parametric", start=start,
@@ -148,7 +149,7 @@ def _shapes(centres, mean, kind, groups, starts=None, alignment_var_px2=None):
             for _ in range(2):   # re-pool with each edge moved onto the common reference
                 prof = lambda u, sh=fitted: parametric_profile(u, sh)
                 own = np.array([_safe_shift(centres, mean[e], prof) for e in members])
-                pooled = np.nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
+                pooled = nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
                                      for e, sh_ in zip(members, own)], axis=0)
                 fitted, extra = fit_shape(centres, pooled, kind="step" if kind == "step" else "parametric",
                                           start=fitted, peak_side=int(g))
@@ -156,11 +157,11 @@ def _shapes(centres, mean, kind, groups, starts=None, alignment_var_px2=None):
         except (RuntimeError, ValueError):
             fitted, own = (start or EdgeShape(2.0)), np.zeros(members.size)
         shape = fitted
-        if alignment_var_px2 is not None:
-            shape = correct_self_alignment(fitted, float(np.nanmean(alignment_var_px2[members])))
+        if blur_change_px2 is not None:
+            shape = adjust_blur(fitted, float(nanmean(blur_change_px2[members])))
         corr = None
         if kind == "template":
-            aligned = np.nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
+            aligned = nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
                                   for e, sh_ in zip(members, own)], axis=0)
             mu = parametric_profile(centres, fitted)
             good = np.isfinite(aligned)
@@ -280,7 +281,7 @@ def _scan_correlation(win, res, ok, var, rng_seed=0):
     return gamma0, a, se
 
 
-def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int = 21,
+def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int = 31,
               polarity: str = "auto", orientation: str = "auto", noise_correlation: str = "auto",
               max_iterations: int = 30, tolerance_px: float = 1e-4, chunk_rows: int = 4096,
               layout: LineLayout | None = None) -> EdgeTraces:
@@ -341,7 +342,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         table = tabulate([lambda u, derivative=False: parametric_profile(u, EdgeShape(2.0), derivative=derivative)]
                          * idx.size, 3 * hmax + 6)
         res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, guess.ravel(),
-                         grid_offsets_px=np.arange(-3, 4), max_iterations=max_iterations,
+                         grid_offsets_px=np.arange(-(hmax - 3), hmax - 2), max_iterations=max_iterations,
                          tolerance_px=1e-2, chunk_rows=chunk_rows)
         inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
         ok = np.isfinite(res.x0) & inside & (np.abs(res.gain) > 0)
@@ -351,10 +352,17 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         #    roughness, but free of the distortion that self-alignment on a wrong (plain-step)
         #    model leaves, which can favour a step hidden under a bright rim
         x_coarse = res.x0.copy()
+        # roughness variance about the centre line: scatter of the coarse positions less their
+        # own noise (their unweighted variance s^2 / info), removed from the profile's blur
+        s2 = res.rss / np.clip(res.n_used - 3, 1, None)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dev = np.where(ok, res.x0 - centres.ravel(), np.nan).reshape(idx.size, n_rows)
+            noise_a = nanmedian(np.where(ok, s2 / res.info, np.nan).reshape(idx.size, n_rows), axis=1)
+        rough_var = np.clip(nanmean(dev ** 2, axis=1) - noise_a, 0.0, None)
         res.x0 = centres.ravel().copy()
         ub, mean = _aligned_profiles(win, res, ok, hmax)
         groups = np.array([1 if layout.edges[i].side == "left" else -1 for i in idx])
-        funcs, shapes, shift = _shapes(ub, mean, model, groups)
+        funcs, shapes, shift = _shapes(ub, mean, model, groups, blur_change_px2=-np.nan_to_num(rough_var))
         table = tabulate(funcs, 3 * hmax + 6)
         # 3. unweighted pass; shape again with the alignment scatter removed; unweighted pass
         #    with that shape, whose residuals give the noise model and the scan correlation
@@ -364,11 +372,18 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         ok = _row_ok(res, win)
         s2 = res.rss / np.clip(res.n_used - 3, 1, None)
         with np.errstate(divide="ignore", invalid="ignore"):
-            align_var = np.array([np.nanmean(np.where(ok, s2 / res.info, np.nan)[e_idx == e])
+            align_var = np.array([nanmean(np.where(ok, s2 / res.info, np.nan)[e_idx == e])
                                   for e in range(idx.size)])
+        # from here on each row's window is centred on that row's own estimate: a window that
+        # stays on the centre line truncates the edge on one side when the edge wanders, and at
+        # low contrast-to-noise the fit then drifts toward the window centre (shrinkage)
+        own = np.where(ok, res.x0, centres.ravel()).reshape(idx.size, n_rows)
+        win = EdgeWindows(m.pixels, own, half, sat)
+        res.offset = np.where(ok, res.offset, np.nan)
+        ok = ok & np.isfinite(res.x0)
         ub, mean = _aligned_profiles(win, res, ok, hmax)
         funcs, shapes, shift2 = _shapes(ub, mean, model, groups, starts=shapes,
-                                        alignment_var_px2=np.nan_to_num(align_var))
+                                        blur_change_px2=np.nan_to_num(align_var))
         table = tabulate(funcs, 3 * hmax + 6)
         x_start = np.where(ok, res.x0, centres.ravel()) + shift2[e_idx]
         res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
@@ -404,7 +419,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         code[~res.converged] = REASON_CODES["no_convergence"]
         inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
         code[~inside & res.converged] = REASON_CODES["left_window"]
-        med_gain = np.array([np.nanmedian(res.gain[e_idx == e]) for e in range(idx.size)])
+        med_gain = np.array([nanmedian(res.gain[e_idx == e]) for e in range(idx.size)])
         rel = res.gain / med_gain[e_idx]
         code[(code == 0) & ~(rel > 0.3)] = REASON_CODES["low_contrast"]
         code[win.saturated] = REASON_CODES["saturated"]

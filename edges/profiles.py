@@ -32,7 +32,7 @@ import numpy as np
 from scipy import ndimage, optimize, special
 
 __all__ = ["EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "fit_shift", "tabulate",
-           "correct_self_alignment", "half_level_offset"]
+           "adjust_blur", "half_level_offset"]
 
 _SQRT2PI = math.sqrt(2 * math.pi)
 GRID_STEP_PX = 1.0 / 32.0
@@ -212,19 +212,21 @@ def fit_shift(u, z, profile) -> float:
     return float(popt[0])
 
 
-def correct_self_alignment(shape: EdgeShape, variance_px2: float) -> EdgeShape:
-    """Undo the sharpening of a mean profile aligned on each row's own fitted position.
+def adjust_blur(shape: EdgeShape, delta_variance_px2: float) -> EdgeShape:
+    """Add ``delta_variance_px2`` (negative to remove) to the blur^2 and peak width^2.
 
-    To first order in the position error e of a row, the aligned mean is
-    mu + (1/2) var(e) mu'' (misalignment blurs) - var(e) mu'' (e is correlated with the row's
-    own noise, which the alignment therefore stacks coherently), i.e. *sharper* than the true
-    profile by ``var(e)``: blur^2 and peak width^2 are increased by it (the peak keeps its area).
-    Checked on renders: aligned blur 1.967 px against a true 2.000 px at var(e) = 0.107 px^2.
+    Two uses in the fit.  (1) A mean profile aligned on each row's *own* fitted position is
+    sharper than the true profile by var(e), e the position error: to first order the aligned
+    mean is mu + (1/2) var(e) mu'' (misalignment blurs) - var(e) mu'' (e is correlated with the
+    row's own noise, which the alignment stacks coherently); so var(e) is added back (checked on
+    renders: aligned blur 1.967 px against a true 2.000 px at var(e) = 0.107 px^2).  (2) A
+    profile aligned on a smooth centre line is blurred by the edge's roughness, which is
+    removed.  The peak keeps its area.
     """
-    s = math.sqrt(max(shape.blur_px ** 2 + variance_px2, 0.04))
+    s = math.sqrt(max(shape.blur_px ** 2 + delta_variance_px2, 0.04))
     if not shape.peak_height:
         return EdgeShape(s)
-    w = math.sqrt(max(shape.peak_width_px ** 2 + variance_px2, 0.04))
+    w = math.sqrt(max(shape.peak_width_px ** 2 + delta_variance_px2, 0.04))
     return EdgeShape(s, shape.peak_height * shape.peak_width_px / w, shape.peak_offset_px, w)
 
 

@@ -1,0 +1,208 @@
+"""The per-row edge fit against truth, scipy's curve_fit, the Cramer-Rao bound and baselines."""
+import math
+
+import numpy as np
+import pytest
+from scipy import optimize
+
+from edges._solver import solve_rows
+from edges.baselines import threshold_edges
+from edges.fit import LOW_CONTRAST_CNR, fit_edges
+from edges.profiles import EdgeShape, parametric_profile, tabulate
+from edges.render import expected_row_profile
+
+from ._images import line_space
+
+
+def _half_level_offset(settings):
+    """Where the true (rendered) profile of a left edge at 0 crosses half-way between its
+    plateaus, found with scipy's brentq on the renderer's closed form: the fit's documented
+    reference point (edges.profiles), computed independently of the fit."""
+    lo, hi = settings.space_level, settings.line_level
+    f = lambda x: expected_row_profile(np.array([[x]]), np.array([0.0]), np.array([500.0]), settings)[0] \
+        - 0.5 * (lo + hi)
+    return optimize.brentq(f, -6, 6)
+
+
+@pytest.mark.parametrize("model", ["template", "parametric", "step"])
+def test_noiseless_plain_step_positions_are_exact(rng, model):
+    # a plain blurred step is in every model's family: error within 0.02 px of the truth
+    m, truth, _ = line_space(rng, n_rows=400, n_cols=200, edge_peak=0, shot_noise=False)
+    et = fit_edges(m, model=model)
+    err = et.position_nm - truth["edge_nm"]
+    assert et.valid.all()
+    assert np.max(np.abs(err)) < 0.02
+
+
+@pytest.mark.parametrize("model", ["template", "parametric"])
+def test_noiseless_rimmed_edge_sits_at_its_half_level_point(rng, model):
+    m, truth, s = line_space(rng, n_rows=400, n_cols=200, shot_noise=False)
+    et = fit_edges(m, model=model)
+    ref = _half_level_offset(s)                     # left edges; right edges mirrored
+    expect = truth["edge_nm"] + np.where(et.side == "left", ref, -ref)[:, None]
+    assert np.max(np.abs(et.position_nm - expect)) < 0.02
+
+
+@pytest.mark.parametrize("model", ["template", "parametric"])
+def test_other_profile_gives_constant_offset_only(rng, model):
+    # A profile outside the parametric family: the mean of two renders with beams of 1.2 and
+    # 3.5 nm (not a Gaussian blur) with rims.  A constant offset per edge is allowed; the error
+    # must not follow the edge around (scatter < 0.02 px).
+    m1, truth, s = line_space(rng, n_rows=400, n_cols=200, shot_noise=False, blur_nm=1.2)
+    from edges.render import SEMSettings, render_micrograph
+    from dataclasses import replace
+    s2 = replace(s, blur_nm=3.5)
+    px2, _ = render_micrograph(truth["left_nm"], truth["right_nm"], n_cols=200, settings=s2, rng=rng)
+    m = replace(m1, pixels=0.5 * (m1.pixels + px2))
+    err = fit_edges(m, model=model).position_nm - truth["edge_nm"]
+    assert np.max(np.std(err, axis=1)) < 0.02
+
+
+def test_batched_solver_matches_curve_fit(rng):
+    # Reference library: scipy.optimize.curve_fit on each row, same profile, same weights,
+    # same start; absolute_sigma=True gives the covariance for known weights (Kay 1993).
+    shape = EdgeShape(1.8, 0.7, 1.6, 2.2)
+    n, width = 60, 21
+    cols = np.arange(width, dtype=float)[None, :] + np.zeros((n, 1))
+    x_true = 10 + rng.uniform(-1.5, 1.5, n)
+    sd = 0.04 + 0.02 * rng.random((n, width))
+    y = 3.0 + 20.0 * parametric_profile(cols - x_true[:, None], shape) + sd * rng.standard_normal((n, width)) * 20
+    w = 1.0 / (20 * sd) ** 2
+    table = tabulate([lambda u, derivative=False: parametric_profile(u, shape, derivative=derivative)], 40)
+    x0 = np.rint(x_true) + 0.3
+    res = solve_rows(y, cols, w, table, np.zeros(n, int), x0, tolerance_px=1e-6)
+    for i in range(n):
+        # same start: position x0, gain and offset by linear least squares at x0
+        b0, a0 = np.polyfit(parametric_profile(cols[i] - x0[i], shape), y[i], 1)
+        popt, pcov = optimize.curve_fit(lambda c, xe, a, b: a + b * parametric_profile(c - xe, shape),
+                                        cols[i], y[i], p0=[x0[i], a0, b0], sigma=20 * sd[i],
+                                        absolute_sigma=True)
+        assert res.x0[i] == pytest.approx(popt[0], abs=1e-3)
+        assert 1 / math.sqrt(res.info[i]) == pytest.approx(math.sqrt(pcov[0, 0]), rel=0.01)
+
+
+def _realisations(rng, repeat=250, **kw):
+    """Fit an image whose 48-row truth is repeated ``repeat`` times (independent noise)."""
+    m, truth, s = line_space(rng, n_rows=48, n_cols=200, repeat=repeat, **kw)
+    et = fit_edges(m)
+    pos = et.position_nm.reshape(et.n_edges, repeat, 48)
+    sig = et.sigma_nm.reshape(et.n_edges, repeat, 48)
+    return et, truth, s, pos, sig
+
+
+# contrast = dose * (line - space) = dose * 0.3 counts; Gaussian read noise sets CNR directly;
+# shot noise at mid-step has variance dose * 0.45, so CNR = sqrt(dose) * 0.3 / sqrt(0.45).
+CASES = {
+    "gauss-20": dict(shot_noise=False, read_noise=1.5, dose_per_pixel=100),
+    "gauss-5": dict(shot_noise=False, read_noise=6.0, dose_per_pixel=100),
+    "shot-20": dict(dose_per_pixel=2000),
+    "shot-5": dict(dose_per_pixel=125),
+    "shot-corr-20": dict(dose_per_pixel=2000, scan_correlation=0.5),
+    "shot-corr-5": dict(dose_per_pixel=125, scan_correlation=0.5),
+}
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", list(CASES))
+def test_uncertainty_is_calibrated_over_noise_realisations(rng, case):
+    # 250 realisations per (edge, row): each row's empirical sd has a relative standard error
+    # 1/sqrt(2 * 249) = 4.5%, pooled over 4 edges x 48 rows about 0.35%; [0.95, 1.05] is the
+    # design target (DESIGN.md), far outside that scatter.
+    et, _, _, pos, sig = _realisations(rng, **CASES[case])
+    assert et.valid.mean() > 0.999
+    emp = np.nanstd(pos, axis=1, ddof=1)
+    ratio = math.sqrt(np.nanmean(sig ** 2) / np.nanmean(emp ** 2))
+    assert 0.95 <= ratio <= 1.05, ratio
+    assert not any("low_contrast" in f for f in et.edge_flags)
+
+
+def test_low_contrast_edges_are_flagged(rng):
+    et = fit_edges(line_space(rng, n_rows=600, n_cols=200, shot_noise=False, read_noise=15.0,
+                              dose_per_pixel=100)[0])   # CNR = 30 / 15 = 2
+    # the per-edge CNR estimate (median over rows) comes out near the true 2
+    np.testing.assert_allclose(et.contrast_to_noise, 2.0, rtol=0.25)
+    assert all("low_contrast" in f for f in et.edge_flags)
+
+
+def _crlb_var_px2(truth, s, sigma_grey=None, dose=None, half=15):
+    """Cramer-Rao bound for x0 with gain and offset unknown and the shape known:
+    var >= [F^-1]_00, F = J^T Sigma^-1 J, J = d mu / d(x0, offset, gain) (Kay 1993, ch. 3);
+    white Gaussian noise: Sigma = sigma^2 I; Poisson counts: F = sum_k J_k J_k^T / lambda_k.
+    Evaluated per row on the window the fit uses, with mu from the renderer's closed form and
+    d mu / d x0 by central differences."""
+    out = []
+    for e in range(truth["edge_nm"].shape[0]):
+        for x in truth["edge_nm"][e, :48]:
+            cols = np.rint(x) + np.arange(-half, half + 1)
+            left, right = (x, x + 500) if e % 2 == 0 else (x - 500, x)
+            prof = lambda l, r: expected_row_profile(cols[:, None], np.array([l]), np.array([r]), s)
+            h = 1e-4
+            d = ((prof(left + h, right + h) if e % 2 == 0 else prof(left - h, right + h)) -
+                 (prof(left - h, right - h) if e % 2 == 0 else prof(left + h, right - h))) / (2 * h)
+            d = d if e % 2 == 0 else -d  # derivative with respect to the right edge position
+            if e % 2 == 1:
+                d = (prof(left, right + h) - prof(left, right - h)) / (2 * h)
+            else:
+                d = (prof(left + h, right) - prof(left - h, right)) / (2 * h)
+            mu = prof(left, right)
+            J = np.stack([s.dose_per_pixel * s.gain * d, np.ones_like(mu), mu], axis=1)
+            if dose is None:
+                F = J.T @ J / sigma_grey ** 2
+            else:
+                lam = s.dose_per_pixel * mu
+                F = (J.T / (s.gain ** 2 * lam)) @ J
+            out.append(np.linalg.inv(F)[0, 0])
+    return float(np.mean(out))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("case", ["gauss-5", "gauss-20", "shot-5"])
+def test_scatter_attains_the_cramer_rao_bound(rng, case):
+    # empirical variance within 5% (in sd) of the bound; MC standard error ~0.35% in sd
+    kw = CASES[case]
+    et, truth, s, pos, _ = _realisations(rng, **kw)
+    emp_var = np.nanmean(np.nanvar(pos, axis=1, ddof=1))
+    bound = _crlb_var_px2(truth, s, sigma_grey=kw.get("read_noise"),
+                          dose=None if not s.shot_noise else s.dose_per_pixel)
+    ratio = math.sqrt(emp_var / bound)
+    assert 0.99 <= ratio <= 1.05, ratio
+
+
+def _rms_error(et, truth):
+    err = et.position_nm - truth["edge_nm"]
+    err = err - np.nanmean(err, axis=1, keepdims=True)     # a constant offset is allowed
+    return float(np.sqrt(np.nanmean(err ** 2)))
+
+
+def test_model_fit_beats_threshold_at_cnr_5(rng):
+    # Common practice: model-based edge fits are more precise than threshold detection.  Judged
+    # by error against truth; with ~4000 rows each rms has a relative standard error of ~1.1%.
+    m, truth, _ = line_space(rng, n_rows=1000, n_cols=200, shot_noise=False, read_noise=6.0,
+                             dose_per_pixel=100, edge_peak=0)
+    fit_rms = _rms_error(fit_edges(m), truth)
+    thr_rms = _rms_error(threshold_edges(m), truth)
+    assert fit_rms * (1 + 5 * 0.011 * math.sqrt(2)) < thr_rms
+
+
+def test_no_shrinkage_toward_the_guess_at_cnr_2(rng):
+    # Regressing measured on true displacement from the edge's straight centre line: slope 1
+    # for an unbiased detector.  Standard error ~ sd(error) / (sd(truth) sqrt(n)) ~ 0.03 per
+    # edge here.  Measured: fit 0.92-0.99 (mean 0.95; a few per cent of shrinkage remain at
+    # CNR 2, where the edge is flagged low_contrast anyway), threshold (crossing nearest the
+    # guess) 0.24-0.33: it removes three quarters of the real roughness.
+    m, truth, _ = line_space(rng, n_rows=1000, n_cols=200, sigma_nm=2.0, shot_noise=False,
+                             read_noise=15.0, dose_per_pixel=100, edge_peak=0)
+
+    def slope(et):
+        rows = np.arange(truth["edge_nm"].shape[1])
+        out = []
+        for e in range(et.n_edges):
+            t = truth["edge_nm"][e] - np.polyval(np.polyfit(rows, truth["edge_nm"][e], 1), rows)
+            ok = et.valid[e]
+            mm = et.position_nm[e, ok] - np.mean(et.position_nm[e, ok])
+            out.append(np.polyfit(t[ok] - t[ok].mean(), mm, 1)[0])
+        return float(np.mean(out))
+
+    fit = fit_edges(m)
+    assert abs(slope(fit) - 1) < 0.1
+    assert slope(threshold_edges(m)) < 0.5

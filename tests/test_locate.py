@@ -1,0 +1,71 @@
+"""Finding lines and edges: polarity, orientation, tilt, borders, dense lines, no lines."""
+import math
+
+import numpy as np
+import pytest
+
+from edges._types import Micrograph
+from edges.locate import LocateError, locate_edges
+
+from ._images import line_space
+
+
+@pytest.mark.parametrize("polarity", ["bright", "dark"])
+@pytest.mark.parametrize("edge_peak", [0.0, 0.5])
+def test_edges_found_for_either_polarity(rng, polarity, edge_peak):
+    m, truth, _ = line_space(rng, n_rows=256, n_cols=330, polarity=polarity, edge_peak=edge_peak,
+                             dose_per_pixel=60)
+    lay = locate_edges(m, polarity=polarity)
+    guess = np.array([e.column_px for e in lay.edges])
+    true = truth["edge_nm"].mean(axis=1)
+    assert guess.size == true.size
+    # the coarse guess lies within the fit's reach (a bright rim can pull it a few px)
+    assert np.max(np.abs(guess - true)) < 6
+    assert [e.side for e in lay.edges[:2]] == ["left", "right"]
+    assert lay.micrograph.polarity == polarity
+
+
+def test_horizontal_lines_are_turned(rng):
+    m, truth, _ = line_space(rng, n_rows=200, n_cols=260, horizontal=True, dose_per_pixel=60)
+    assert m.pixels.shape == (260, 200)
+    lay = locate_edges(m)
+    assert lay.micrograph.rotated and lay.micrograph.pixels.shape == (200, 260)
+    np.testing.assert_allclose([e.column_px for e in lay.edges], truth["edge_nm"].mean(1), atol=4)
+
+
+def test_tilt_is_followed(rng):
+    m, truth, _ = line_space(rng, n_rows=512, n_cols=260, tilt_deg=2.0, dose_per_pixel=60)
+    lay = locate_edges(m)
+    assert lay.tilt_px_per_row == pytest.approx(math.tan(math.radians(2.0)), rel=0.05)
+    g = lay.guess_columns(np.arange(512))
+    # per-row guesses follow the tilted edges to within the roughness and rim offset
+    assert np.max(np.abs(g - truth["edge_nm"]).mean(axis=1)) < 3
+
+
+def test_partial_lines_at_the_border_are_dropped(rng):
+    m, truth, _ = line_space(rng, n_rows=128, n_cols=260, dose_per_pixel=60)
+    cut = Micrograph(m.pixels[:, 60:], 1.0)          # cuts into the first line (49.5-81.5 nm)
+    lay = locate_edges(cut)
+    assert lay.dropped_partial_lines >= 1
+    assert len(lay.edges) == truth["edge_nm"].shape[0] - 2
+
+
+def test_dense_lines_are_flagged_not_fitted(rng):
+    m, _, _ = line_space(rng, n_rows=64, n_cols=120, pitch_nm=10.0, cd_nm=5.0, sigma_nm=0.2,
+                         blur_nm=0.8, edge_peak=0, dose_per_pixel=400)
+    lay = locate_edges(m)
+    assert lay.edges and all(e.flag == "too_close" for e in lay.edges)
+
+
+def test_image_without_lines_is_a_clear_error(rng):
+    flat = Micrograph(100 + rng.normal(0, 3, (128, 128)), 1.0, source="flat.tif")
+    with pytest.raises(LocateError, match=r"flat\.tif: no lines found"):
+        locate_edges(flat)
+
+
+def test_bad_options_are_refused(rng):
+    m, _, _ = line_space(rng, n_rows=64, n_cols=200)
+    with pytest.raises(ValueError, match="window_px=20"):
+        locate_edges(m, window_px=20)
+    with pytest.raises(ValueError, match="polarity='grey'"):
+        locate_edges(m, polarity="grey")
