@@ -407,13 +407,14 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         res = solve_rows(win.y, win.cols, weight, table, e_idx, x_start, max_iterations=max_iterations,
                          tolerance_px=tolerance_px, chunk_rows=chunk_rows, n_lags=n_lags,
                          lag_variance=var if correlated else None)
-        if correlated:
-            # sandwich for a causal first-order filter: Cov(e_i, e_(i+l)) = a^l var_i
-            ls = res.lag_sums
-            num = ls[:, 0] + 2 * (ls[:, 1:] * a_scan ** np.arange(1, n_lags + 1)).sum(1)
-            var_x = gamma0 * num / res.info ** 2
-        else:
-            var_x = gamma0 / res.info
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if correlated:
+                # sandwich for a causal first-order filter: Cov(e_i, e_(i+l)) = a^l var_i
+                ls = res.lag_sums
+                num = ls[:, 0] + 2 * (ls[:, 1:] * a_scan ** np.arange(1, n_lags + 1)).sum(1)
+                var_x = gamma0 * num / res.info ** 2
+            else:
+                var_x = gamma0 / res.info
         ok = _row_ok(res, win)
         code = np.zeros(res.x0.size, np.int8)
         code[~res.converged] = REASON_CODES["no_convergence"]

@@ -198,7 +198,12 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     if not np.all(np.isfinite(px)):   # a few bad pixels: located around, flagged by the fit
         px = np.where(np.isfinite(px), px, np.nanmedian(px))
     if orientation == "auto":
-        horizontal = np.var(px.mean(axis=1)) > np.var(px.mean(axis=0))
+        # spread (inter-quartile range) of the robust profiles along each axis: lines make the
+        # profile across them vary; a few bright or saturated rows do not move an IQR
+        def iqr(v):
+            q1, q3 = np.percentile(v, [25, 75])
+            return q3 - q1
+        horizontal = iqr(np.median(px, axis=1)) > iqr(np.median(px, axis=0))
     else:
         horizontal = orientation == "horizontal"
     if horizontal:
