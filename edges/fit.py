@@ -245,7 +245,7 @@ def _scan_correlation(win, res, ok, var, rng_seed=0):
     full = np.flatnonzero(ok & (win.mask.sum(1) == width))
     if full.size < 200:
         return 1.0, 0.0, np.inf
-    sample = full if full.size <= 4000 else np.random.default_rng(rng_seed).choice(full, 4000, replace=False)
+    sample = full if full.size <= 1500 else np.random.default_rng(rng_seed).choice(full, 1500, replace=False)
     sample.sort()
     mu, dmu = res.table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
     X = np.stack([-res.gain[sample, None] * dmu, np.ones_like(mu), mu], axis=2)

@@ -160,8 +160,8 @@ def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int
         k = int(np.argmax(np.abs(resid)))
         p_init = [[*sp, resid[k] / sp[2], u[k] - sp[0], 1.0]]
         sides = (peak_side,) if peak_side else (-1, 1)
-        for dx in (-4.0, 0.0, 4.0):
-            for dd in (1.0, 3.0):
+        for dx in (-3.0, 0.0, 3.0):
+            for dd in (2.0,):
                 for sd in sides:
                     p_init.append([sp[0] + dx, sp[1], sp[2], sp[3], 0.5, sd * dd, 1.5])
     best, best_cost = None, np.inf
