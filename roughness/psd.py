@@ -1,0 +1,164 @@
+"""Power spectral density of edge, width and centre traces.
+
+Convention (one-sided, METHODS section 1): for a detrended trace z of N samples spaced dy nm,
+window w normalised by sum(w^2),
+
+    P1_k = 2 dy |sum_n w_n z_n exp(-2 pi i k n / N)|^2 / sum_n w_n^2,   f_k = k / (N dy),
+
+with bins 0 and N/2 (N even) not doubled.  Units: nm^3 against cycles per nm.  With the boxcar
+window sum_k P1_k df equals the mean square of z (Parseval); with a window it holds in
+expectation as a w^2-weighted variance, and a white noise of variance s^2 has level 2 dy s^2
+whatever the window.  This is ``scipy.signal.periodogram(z, fs=1/dy, window=..., detrend=False,
+scaling="density")`` for the periodic Hann window.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import signal
+
+__all__ = ["DETRENDS", "detrend_basis", "detrend", "window_values", "periodogram", "bridge_gaps",
+           "PreparedTraces"]
+
+#: Detrend name -> polynomial order removed (None: nothing removed).
+DETRENDS = {"none": None, "mean": 0, "linear": 1, "quadratic": 2}
+
+
+def _validate_detrend(detrend_):
+    if detrend_ not in DETRENDS:
+        raise ValueError(f"detrend={detrend_!r}: must be one of {sorted(DETRENDS)}")
+
+
+def detrend_basis(n_rows: int, detrend_: str) -> np.ndarray:
+    """Orthonormal (n_rows, p) basis Q of the removed polynomials (Legendre columns, QR)."""
+    _validate_detrend(detrend_)
+    order = DETRENDS[detrend_]
+    if order is None:
+        return np.zeros((n_rows, 0))
+    t = np.linspace(-1.0, 1.0, n_rows)
+    q, _ = np.linalg.qr(np.polynomial.legendre.legvander(t, order))
+    return q
+
+
+def detrend(traces, detrend_: str = "linear"):
+    """Remove a least-squares polynomial from each row of ``traces`` ((..., n_rows))."""
+    x = np.asarray(traces, float)
+    q = detrend_basis(x.shape[-1], detrend_)
+    return x - (x @ q) @ q.T
+
+
+def window_values(n_rows: int, window: str) -> np.ndarray:
+    if window == "boxcar":
+        return np.ones(n_rows)
+    if window == "hann":
+        return signal.get_window("hann", n_rows)       # periodic Hann, scipy's default
+    raise ValueError(f"window={window!r}: must be 'hann' or 'boxcar'")
+
+
+def periodogram(z, *, row_spacing_nm: float, window: str = "hann"):
+    """One-sided density periodogram of each (already detrended) trace.
+
+    Parameters
+    ----------
+    z : (..., n_rows) array_like
+        Traces in nm.
+    row_spacing_nm : float
+    window : {"hann", "boxcar"}
+
+    Returns
+    -------
+    frequency_per_nm : (n_rows // 2 + 1,) ndarray
+    psd_nm3 : (..., n_rows // 2 + 1) ndarray
+    """
+    z = np.asarray(z, float)
+    n = z.shape[-1]
+    if not row_spacing_nm > 0:
+        raise ValueError(f"row_spacing_nm={row_spacing_nm}: must be > 0")
+    w = window_values(n, window)
+    spec = np.fft.rfft(z * w, axis=-1)
+    p = row_spacing_nm * np.abs(spec) ** 2 / np.sum(w ** 2)
+    if n % 2 == 0:
+        p[..., 1:-1] *= 2.0
+    else:
+        p[..., 1:] *= 2.0
+    return np.fft.rfftfreq(n, row_spacing_nm), p
+
+
+def cross_periodogram(za, zb, *, row_spacing_nm: float, window: str = "hann"):
+    """Real part of the one-sided cross-PSD of paired traces (nm^3); sum times df is cov."""
+    n = za.shape[-1]
+    w = window_values(n, window)
+    sa, sb = np.fft.rfft(za * w, axis=-1), np.fft.rfft(zb * w, axis=-1)
+    p = row_spacing_nm * np.real(np.conj(sa) * sb) / np.sum(w ** 2)
+    if n % 2 == 0:
+        p[..., 1:-1] *= 2.0
+    else:
+        p[..., 1:] *= 2.0
+    return p
+
+
+@dataclass(frozen=True)
+class PreparedTraces:
+    """Edge traces with short gaps bridged, ready for spectra and variances.
+
+    Attributes
+    ----------
+    position_nm, sigma_nm : (n_edges, n_rows) ndarray
+        Bridged positions and their 1-sigma noise (interpolated rows carry
+        sqrt((1-t)^2 s_a^2 + t^2 s_b^2)); NaN rows remain only in excluded edges.
+    usable : (n_edges,) ndarray of bool
+    exclusion : (n_edges,) ndarray of str
+        ``""``, ``"too_many_invalid_rows"``, ``"gap_too_long"`` or the edge's own flag.
+    bridged_rows : (n_edges,) ndarray of int
+    """
+
+    position_nm: np.ndarray
+    sigma_nm: np.ndarray
+    usable: np.ndarray
+    exclusion: np.ndarray
+    bridged_rows: np.ndarray
+
+
+def bridge_gaps(position_nm, sigma_nm, valid, *, max_gap_rows: int = 3,
+                max_invalid_fraction: float = 0.05) -> PreparedTraces:
+    """Bridge runs of at most ``max_gap_rows`` invalid rows by linear interpolation.
+
+    An edge with more than ``max_invalid_fraction`` invalid rows, or a longer gap, is excluded
+    with its reason (never silently): interpolation smooths the roughness and the noise there.
+    Gaps at either end are filled with the nearest valid row.
+    """
+    pos = np.array(position_nm, float)
+    sig = np.array(sigma_nm, float)
+    valid = np.asarray(valid, bool)
+    n_e, n_r = pos.shape
+    usable = np.ones(n_e, bool)
+    why = np.array([""] * n_e, dtype=object)
+    bridged = np.zeros(n_e, np.int64)
+    rows = np.arange(n_r)
+    for e in range(n_e):
+        ok = valid[e] & np.isfinite(pos[e]) & np.isfinite(sig[e])
+        bad = ~ok
+        if bad.mean() > max_invalid_fraction:
+            usable[e], why[e] = False, "too_many_invalid_rows"
+            continue
+        if not bad.any():
+            continue
+        # run lengths of invalid rows
+        edges_ = np.diff(np.r_[0, bad.astype(int), 0])
+        starts, stops = np.flatnonzero(edges_ == 1), np.flatnonzero(edges_ == -1)
+        if np.max(stops - starts) > max_gap_rows:
+            usable[e], why[e] = False, "gap_too_long"
+            continue
+        good_rows = rows[ok]
+        pos[e, bad] = np.interp(rows[bad], good_rows, pos[e, ok])
+        # interpolation weights for the noise: t between the neighbouring valid rows
+        right = np.clip(np.searchsorted(good_rows, rows[bad]), 1, good_rows.size - 1)
+        ra, rb = good_rows[right - 1], good_rows[right]
+        t = np.clip((rows[bad] - ra) / np.maximum(rb - ra, 1), 0, 1)
+        t = np.where(rows[bad] < good_rows[0], 0.0, np.where(rows[bad] > good_rows[-1], 1.0, t))
+        sa, sb = sig[e, ra], sig[e, rb]
+        sig[e, bad] = np.sqrt((1 - t) ** 2 * sa ** 2 + t ** 2 * sb ** 2)
+        bridged[e] = int(bad.sum())
+    return PreparedTraces(position_nm=pos, sigma_nm=sig, usable=usable, exclusion=why.astype(str),
+                          bridged_rows=bridged)

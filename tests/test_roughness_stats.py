@@ -1,0 +1,146 @@
+"""Noise floor, unbiased LER/LWR, left/right correlation, finite length and interval coverage,
+on synthetic traces of known roughness plus white noise of known per-row sigma."""
+import math
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from roughness.noise import floors_disagree, plateau_floor
+from roughness.psd import detrend
+from roughness.stats import analyse_traces, expected_measured_variance, frames_for_noise_fraction, \
+    sampling_plan, summarize
+from roughness.synth import edge_pairs, rough_edges
+
+from ._traces import make_traces
+
+KW = dict(sigma_nm=1.5, correlation_length_nm=8.0, roughness_exponent=0.6)
+
+
+def _noisy(rng, n_lines=250, n_rows=512, rho=0.0, noise=None, row_correlation=0.0):
+    left, right = edge_pairs(n_lines, n_rows, 1.0, lr_correlation=rho, rng=rng, **KW)
+    right = right + 30.0
+    # heteroscedastic per-row noise: sigma rises along the edge from 0.5 to 1.0 nm
+    s = np.linspace(0.5, 1.0, n_rows) if noise is None else noise
+    e = rng.standard_normal((2, n_lines, n_rows))
+    if row_correlation:
+        a = row_correlation
+        e = signal.lfilter([math.sqrt(1 - a * a)], [1, -a], e, axis=-1, zi=(1 - math.sqrt(1 - a * a)) * e[..., :1])[0]
+    clean = make_traces(left, right, 0.0 * s, 0.0 * s)
+    noisy = make_traces(left + s * e[0], right + s * e[1], s, s)
+    return clean, noisy, s
+
+
+def test_unbiased_sigma_recovers_the_realised_roughness(rng):
+    clean, noisy, s = _noisy(rng)
+    truth = summarize([analyse_traces(clean)], n_resamples=0 or 10)
+    est = summarize([analyse_traces(noisy)], n_resamples=200)
+    # unbiased within 2% of the realised sigma (its own sampling error over 500 edges: ~0.4%)
+    assert est["edge_sigma_unbiased_nm"] == pytest.approx(truth["edge_sigma_biased_nm"], rel=0.02)
+    # biased^2 = truth^2 + noise^2 (noise share after a line detrend, METHODS 2.2)
+    keep = 1 - 2 / s.size     # (N - p)/N for p = 2 removed columns, to first order
+    assert est["edge_sigma_biased_nm"] ** 2 == pytest.approx(
+        truth["edge_sigma_biased_nm"] ** 2 + np.mean(s ** 2) * keep, rel=0.01)
+    assert est["width_sigma_unbiased_nm"] == pytest.approx(truth["width_sigma_biased_nm"], rel=0.02)
+
+
+def test_noise_floor_matches_the_noise_spectrum_and_the_plateau(rng):
+    clean, noisy, s = _noisy(rng)
+    im_noisy, im_clean = analyse_traces(noisy), analyse_traces(clean)
+    pure_noise = im_noisy.psd["edge"] - im_clean.psd["edge"]
+    # the noise alone (cross terms average out): its mean level at f > 0.1/nm against the
+    # covariance floor (Hann-weighted mean of s^2); 500 traces x 200 bins: se ~ 0.4%
+    f = im_noisy.frequency_per_nm
+    sel = (f > 0.1) & (f < 0.49)
+    floor = im_noisy.psd["edge_floor"].mean()
+    assert pure_noise[:, sel].mean() == pytest.approx(floor, rel=0.03)
+    # plateau of the noisy PSD less the roughness tail (known here from the clean PSD)
+    level, sd = plateau_floor(f, im_noisy.psd["edge"].mean(0), n_traces=500, row_spacing_nm=1.0,
+                              roughness_tail_nm3=im_clean.psd["edge"].mean(0))
+    assert not floors_disagree(level, sd, floor)
+
+
+def test_disagreement_flag_fires_for_noise_correlated_between_rows(rng):
+    # AR(1) noise between rows (a = 0.6) with the same marginal variance: the covariance floor
+    # is right for the variance but the spectrum is not white (METHODS 2.4, item 1)
+    clean, noisy, s = _noisy(rng, noise=np.full(512, 0.8), row_correlation=0.6)
+    im_noisy, im_clean = analyse_traces(noisy), analyse_traces(clean)
+    level, sd = plateau_floor(im_noisy.frequency_per_nm, im_noisy.psd["edge"].mean(0), n_traces=500,
+                              row_spacing_nm=1.0, roughness_tail_nm3=im_clean.psd["edge"].mean(0))
+    assert floors_disagree(level, sd, im_noisy.psd["edge_floor"].mean())
+
+
+def test_width_centre_and_correlation_with_correlated_edges(rng):
+    # Truth: the same edges without noise.  Tolerance: 4 x the bootstrap standard error.
+    clean, noisy, _ = _noisy(rng, rho=0.4)
+    truth = summarize([analyse_traces(clean)], n_resamples=10)
+    est = summarize([analyse_traces(noisy)], n_resamples=400)
+    for q in ("width", "centre"):
+        se = (est[f"{q}_sigma_unbiased_high_nm"] - est[f"{q}_sigma_unbiased_low_nm"]) / (2 * 1.96)
+        assert abs(est[f"{q}_sigma_unbiased_nm"] - truth[f"{q}_sigma_biased_nm"]) < 4 * se
+    se = (est["lr_correlation_unbiased_high"] - est["lr_correlation_unbiased_low"]) / (2 * 1.96)
+    assert abs(est["lr_correlation_unbiased"] - truth["lr_correlation_biased"]) < 4 * se
+    assert est["lr_correlation_biased"] < truth["lr_correlation_biased"] - 4 * se   # diluted by noise
+    # sigma_w^2 = sigma_L^2 + sigma_R^2 - 2 cov (exact identity, same detrend everywhere)
+    v = est.values
+    rho = v["lr_correlation_unbiased"]
+    assert v["width_var_unbiased_nm2"] == pytest.approx(2 * v["edge_var_unbiased_nm2"] * (1 - rho), rel=0.03)
+
+
+@pytest.mark.parametrize("l_over_xi,h", [(20, 0.5), (100, 0.5), (30, 0.8)])
+def test_finite_length_variance_matches_trace_formula(rng, l_over_xi, h):
+    # E[|(I-P) x|^2 / N] = tr((I-P) C) / N (METHODS 1.6); 3000 non-periodic edges, 4 se.
+    # C is the generator's own ACF (the Riemann sum of the PSD on the 8x longer periodic grid:
+    # Thorsos edges lack the spectrum beyond Nyquist, METHODS 5), so the check is of the trace
+    # formula alone; the continuous model's value is larger by about that missing tail.
+    from roughness._selfaffine import self_affine_psd
+
+    xi, n = 6.0, int(l_over_xi * 6)
+    kw = dict(sigma_nm=1.0, correlation_length_nm=xi, roughness_exponent=h)
+    x = rough_edges(3000, n, 1.0, rng=rng, **kw)
+    v = np.mean(detrend(x, "linear") ** 2, axis=1)
+    s2 = self_affine_psd(np.abs(np.fft.fftfreq(8 * n, 1.0)), sided="two", **kw)
+    acf_gen = np.real(np.fft.ifft(s2)) / 1.0
+    expect = expected_measured_variance(n_rows=n, row_spacing_nm=1.0, acf_nm2=acf_gen)
+    assert abs(v.mean() - expect) < 4 * v.std(ddof=1) / math.sqrt(v.size)
+    model = expected_measured_variance(n_rows=n, row_spacing_nm=1.0, **kw)
+    assert expect < model < 1.0              # detrending biases the finite line low
+
+
+@pytest.mark.slow
+def test_interval_coverage(rng):
+    # 300 trials of 12 lines x 256 rows; truth = the expected measured sigma for that length.
+    # Binomial sd of the coverage at 95%: 1.3%; the issue's window [0.90, 0.99].
+    n_rows, hits = 256, 0
+    truth = math.sqrt(expected_measured_variance(n_rows=n_rows, row_spacing_nm=1.0, **KW))
+    trials = 300
+    for _ in range(trials):
+        _, noisy, _ = _noisy(rng, n_lines=12, n_rows=n_rows, noise=np.full(n_rows, 0.6))
+        est = summarize([analyse_traces(noisy)], n_resamples=400, rng=rng)
+        hits += est["edge_sigma_unbiased_low_nm"] <= truth <= est["edge_sigma_unbiased_high_nm"]
+    assert 0.90 <= hits / trials <= 0.99, hits / trials
+
+
+def test_below_noise_is_reported_not_clipped(rng):
+    left = 0.01 * rng.standard_normal((20, 128))
+    s = np.full(128, 1.0)
+    noisy = make_traces(left + rng.standard_normal(left.shape), 30 + left + rng.standard_normal(left.shape), s, s)
+    est = summarize([analyse_traces(noisy)], n_resamples=50)
+    if est["edge_var_unbiased_nm2"] <= 0:
+        assert est["edge_status"] == "below_noise" and math.isnan(est["edge_sigma_unbiased_nm"])
+    # the signed variance is kept (never clipped), so it scatters around the true ~0
+    assert abs(est["edge_var_unbiased_nm2"]) < 0.1
+
+
+def test_sampling_plan_and_frames():
+    plan = sampling_plan(sigma_unbiased_nm=1.5, correlation_length_nm=8.0, roughness_exponent=0.5,
+                         noise_sigma_nm=0.8, row_spacing_nm=1.0, line_length_nm=1000.0, target_relative_sd=0.02)
+    # METHODS 6 by hand, H = 1/2 (c = 1): M L = 2 [s^4 xi + 2 s^2 n^2 dy + n^4 dy] / (4 r^2 s^4)
+    s2, n2 = 2.25, 0.64
+    by_hand = 2 * (s2 * s2 * 8 + 2 * s2 * n2 + n2 * n2) / (4 * 0.02 ** 2 * s2 * s2)
+    assert plan["total_length_nm"] == pytest.approx(by_hand)
+    assert plan["lines_needed"] == math.ceil(by_hand / 1000)
+    assert plan["lines_needed_noise_free"] <= plan["lines_needed"]
+    # noise variance 1.0 nm^2 now, roughness 2.0 nm^2: fraction 1/3; to reach 10% needs
+    # 1.0 * 0.9 / (0.1 * 2.0) = 4.5 frames
+    assert frames_for_noise_fraction(noise_var_nm2=1.0, unbiased_var_nm2=2.0, target_fraction=0.1) == pytest.approx(4.5)
