@@ -92,6 +92,8 @@ class EdgeTraces:
     source : str
     noise_model : dict
         The image-level noise model used for the weights and uncertainties.
+    rotated : bool
+        The image was turned to make its lines vertical (the scan then ran along the lines).
     """
 
     position_nm: np.ndarray
@@ -108,6 +110,7 @@ class EdgeTraces:
     detector: str = "template"
     source: str = "<array>"
     noise_model: dict = field(default_factory=dict)
+    rotated: bool = False
 
     @property
     def n_edges(self) -> int:

@@ -452,7 +452,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         side=np.array([g.side for g in layout.edges]),
         row_spacing_nm=m.pixel_size_nm, reduced_chi2=chi2, iterations=iters,
         contrast_to_noise=cnr, edge_flags=flags.astype(str), detector=model, source=m.source,
-        noise_model=noise_info)
+        noise_model=noise_info, rotated=m.rotated)
 
 
 def _row_ok(res, win):

@@ -1,0 +1,215 @@
+"""Self-contained HTML report: figures embedded as PNG data, no external references.
+
+Per image (the first ``max_image_sections``): the image with the fitted edges over it, the edge
+traces, and the PSD on log-log axes (biased, noise floor, unbiased, model); for the set: the
+pooled PSD, a table of biased / noise / unbiased 3-sigma LER and LWR with confidence intervals,
+correlation length, roughness exponent and noise fraction, groups side by side, and warnings in
+plain words.  Every text taken from the data (file names above all) is HTML-escaped.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import io
+import math
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["write_report", "plot_psd", "plot_overlay", "plot_traces"]
+
+_C = {"biased": "#b5562a", "floor": "#7a7a7a", "unbiased": "#1f5f8b", "model": "#2e8b57", "edge": "#f2c14e"}
+
+
+def _png(fig) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
+    import matplotlib.pyplot as plt
+
+    plt.close(fig)
+    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def plot_psd(ax, frequency_per_nm, psd_biased_nm3, floor_nm3, model=None, *, title=""):
+    """Biased PSD, noise floor, unbiased PSD (positive bins) and the model, log-log."""
+    f = np.asarray(frequency_per_nm)[1:]
+    pb = np.asarray(psd_biased_nm3)[1:]
+    pu = pb - floor_nm3
+    ax.loglog(f, pb, color=_C["biased"], lw=1.2, label="biased (measured)")
+    ax.axhline(floor_nm3, color=_C["floor"], ls="--", lw=1, label="noise floor (fit covariance)")
+    pos = pu > 0
+    ax.loglog(f[pos], pu[pos], ".", ms=2.5, color=_C["unbiased"], label="unbiased (floor removed)")
+    if model is not None:
+        ax.loglog(f, model.model_nm3(f), color=_C["model"], lw=1.5,
+                  label=f"model: xi {model.correlation_length_nm:.1f} nm, H {model.roughness_exponent:.2f}")
+    ax.set_xlabel("spatial frequency (1/nm)")
+    ax.set_ylabel("PSD, one-sided (nm$^3$)")
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=7, frameon=False)
+    ax.grid(True, which="both", alpha=0.2)
+    return ax
+
+
+def plot_overlay(ax, pixels, traces, *, max_rows=512):
+    """The image (rows along the lines) with the fitted edge positions drawn over it."""
+    rows = min(pixels.shape[0], max_rows)
+    p = traces.row_spacing_nm
+    ax.imshow(pixels[:rows], cmap="gray", aspect="auto", interpolation="nearest",
+              extent=(-0.5 * p, (pixels.shape[1] - 0.5) * p, (rows - 0.5) * p, -0.5 * p))
+    y = np.arange(rows) * p
+    for e in range(traces.n_edges):
+        ax.plot(traces.position_nm[e, :rows], y, color=_C["edge"], lw=0.6)
+    ax.set_xlabel("across the lines (nm)")
+    ax.set_ylabel("along the lines (nm)")
+    return ax
+
+
+def plot_traces(ax, traces, *, n_edges=6):
+    """Edge deviations from their straight-line fit, offset for clarity."""
+    y = np.arange(traces.n_rows) * traces.row_spacing_nm
+    for k, e in enumerate(range(min(n_edges, traces.n_edges))):
+        x = traces.position_nm[e]
+        ok = np.isfinite(x)
+        if ok.sum() < 3:
+            continue
+        dev = x - np.polyval(np.polyfit(y[ok], x[ok], 1), y)
+        ax.plot(y, dev + 8 * k, lw=0.6, color=_C["unbiased"] if traces.side[e] == "left" else _C["biased"])
+    ax.set_xlabel("along the line (nm)")
+    ax.set_ylabel("edge deviation, offset by 8 nm each (nm)")
+    return ax
+
+
+def _fmt(x, nd=2):
+    return "n/a" if x is None or not np.isfinite(x) else f"{x:.{nd}f}"
+
+
+def _ci(v, q):
+    lo, hi = v[f"{q}_sigma_unbiased_low_nm"], v[f"{q}_sigma_unbiased_high_nm"]
+    return f"{_fmt(3 * lo)} to {_fmt(3 * hi)}" if np.isfinite(lo) and np.isfinite(hi) else "n/a"
+
+
+def _table(v, model, confidence):
+    esc = html.escape
+    rows = []
+    for q, name in (("edge", "LER (edges)"), ("width", "LWR (widths)"), ("centre", "line placement (centres)")):
+        rows.append(f"<tr><td>{esc(name)}</td><td>{_fmt(3 * v[f'{q}_sigma_biased_nm'])}</td>"
+                    f"<td>{_fmt(3 * v[f'{q}_sigma_noise_nm'])}</td><td><b>{_fmt(3 * v[f'{q}_sigma_unbiased_nm'])}</b></td>"
+                    f"<td>{_ci(v, q)}</td><td>{_fmt(100 * v[f'{q}_noise_fraction'], 0)}%</td>"
+                    f"<td>{esc(v[f'{q}_status'])}</td></tr>")
+    extra = []
+    if model is not None:
+        extra.append(f"correlation length {_fmt(model.correlation_length_nm, 1)} &plusmn; "
+                     f"{_fmt(model.correlation_length_se_nm, 1)} nm")
+        extra.append(f"roughness exponent {_fmt(model.roughness_exponent)} &plusmn; {_fmt(model.roughness_exponent_se)}")
+        extra.append(f"PSD(0) {_fmt(model.psd0_nm3, 1)} nm<sup>3</sup> one-sided "
+                     f"({_fmt(model.psd0_two_sided_nm3, 1)} nm<sup>3</sup> two-sided, as usually quoted)")
+        extra.append(f"sigma of an infinitely long edge (model) {_fmt(model.sigma_nm)} nm")
+    extra.append(f"CD {_fmt(v['cd_nm'])} nm; left/right edge correlation {_fmt(v['lr_correlation_unbiased'])} "
+                 f"(noise-corrected; {_fmt(v['lr_correlation_biased'])} as measured)")
+    extra.append(f"{v['n_lines']} lines, {v['n_edges']} edges, {v['n_images']} image(s)")
+    return ("<table><tr><th></th><th>3&sigma; biased (nm)</th><th>3&sigma; noise (nm)</th>"
+            f"<th>3&sigma; unbiased (nm)</th><th>{100 * confidence:.0f}% interval, unbiased</th>"
+            "<th>noise share</th><th>status</th></tr>" + "".join(rows) + "</table>"
+            "<p class='facts'>" + "<br>".join(extra) + "</p>")
+
+
+_CSS = """
+body{font-family:Helvetica,Arial,sans-serif;margin:24px 40px;color:#222;max-width:1100px}
+h1{font-size:22px;border-bottom:3px solid #1f5f8b;padding-bottom:6px}
+h2{font-size:17px;color:#1f5f8b;margin-top:30px}
+table{border-collapse:collapse;margin:8px 0;font-size:13px}
+td,th{border:1px solid #ccc;padding:4px 8px;text-align:right}
+td:first-child,th:first-child{text-align:left}
+th{background:#eef3f7}
+.warn{background:#fff4e0;border-left:4px solid #e0a030;padding:6px 10px;margin:6px 0;font-size:13px}
+.facts{font-size:13px;line-height:1.5}
+.figs img{max-width:32%;margin-right:1%}
+.note{font-size:12px;color:#555}
+"""
+
+
+def write_report(meas, path, *, max_image_sections: int = 12) -> Path:
+    """Write the HTML report of a Measurement to ``path``."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    esc = html.escape
+    s = meas.settings
+    parts = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>quietedge roughness report</title>"
+             f"<style>{_CSS}</style></head><body><h1>Roughness report</h1>"]
+    parts.append(f"<p class='note'>{len(meas.images)} image(s) measured, {len(meas.failures)} failed. Detector: "
+                 f"{esc(s.detector)} ({esc(s.profile_model)} profile), detrend {esc(s.detrend)}, PSD window "
+                 f"{esc(s.psd_window)}. Biased = as measured; noise = the part the edge-fit covariance attributes to "
+                 "image noise; unbiased = biased minus noise (variances subtract). PSDs are one-sided. Check results "
+                 "against your site's own metrology procedures before acting on them.</p>")
+    if meas.overall is not None:
+        parts.append("<h2>The whole set</h2>")
+        parts.append(_table(meas.overall.values, meas.overall_model, meas.overall.confidence))
+        if "edge" in meas.psd:
+            fig, axes = plt.subplots(1, 2, figsize=(10, 3.6))
+            d = meas.psd["edge"]
+            plot_psd(axes[0], meas.psd["frequency_per_nm"], d["biased"], d["floor"], meas.overall_model,
+                     title=f"edges, {d['n_traces']} traces")
+            if "width" in meas.psd:
+                w = meas.psd["width"]
+                plot_psd(axes[1], meas.psd["frequency_per_nm"], w["biased"], w["floor"], None,
+                         title=f"widths, {w['n_traces']} lines")
+            parts.append(f"<div><img alt='pooled PSD' src='{_png(fig)}'></div>")
+        groups = sorted({r.group for r in meas.images})
+        if len(groups) > 1:
+            from ._tables import groups_table
+
+            gt = groups_table(meas)
+            parts.append("<h2>Groups side by side</h2><table><tr><th>group</th><th>images</th>"
+                         "<th>LER 3&sigma; biased</th><th>LER 3&sigma; unbiased</th><th>LWR 3&sigma; biased</th>"
+                         "<th>LWR 3&sigma; unbiased</th><th>noise share</th><th>xi (nm)</th><th>H</th></tr>")
+            for _, g in gt.iterrows():
+                parts.append(f"<tr><td>{esc(str(g['group']))}</td><td>{g['n_images']}</td>"
+                             f"<td>{_fmt(g['ler_3sigma_biased_nm'])}</td><td><b>{_fmt(g['ler_3sigma_unbiased_nm'])}</b>"
+                             f"</td><td>{_fmt(g['lwr_3sigma_biased_nm'])}</td><td><b>{_fmt(g['lwr_3sigma_unbiased_nm'])}"
+                             f"</b></td><td>{_fmt(100 * g['noise_fraction'], 0)}%</td>"
+                             f"<td>{_fmt(g['edge_correlation_length_nm'], 1)}</td>"
+                             f"<td>{_fmt(g['edge_roughness_exponent'])}</td></tr>")
+            parts.append("</table>")
+            fig, ax = plt.subplots(figsize=(6, 3))
+            x = np.arange(len(gt))
+            ax.bar(x - 0.2, gt["ler_3sigma_biased_nm"], 0.4, color=_C["biased"], label="biased")
+            ax.bar(x + 0.2, gt["ler_3sigma_unbiased_nm"], 0.4, color=_C["unbiased"], label="unbiased")
+            ax.set_xticks(x, [str(g) for g in gt["group"]])
+            ax.set_ylabel("LER 3$\\sigma$ (nm)")
+            ax.legend(frameon=False, fontsize=8)
+            parts.append(f"<div><img alt='groups' src='{_png(fig)}'></div>")
+    if meas.failures:
+        parts.append("<h2>Images that could not be measured</h2><table><tr><th>image</th><th>reason</th></tr>")
+        for name, reason in meas.failures:
+            parts.append(f"<tr><td>{esc(str(name))}</td><td>{esc(str(reason))}</td></tr>")
+        parts.append("</table>")
+    for k, r in enumerate(meas.images):
+        if k == max_image_sections:
+            parts.append(f"<p class='note'>{len(meas.images) - k} more image(s) are in summary.csv; "
+                         "figures are drawn for the first ones only.</p>")
+            break
+        parts.append(f"<h2>{esc(r.name)}</h2>")
+        for code, text in r.warnings:
+            parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
+        parts.append(_table(r.summary.values, r.model, r.summary.confidence))
+        figs = []
+        if r.preview is not None:
+            fig, ax = plt.subplots(figsize=(4, 4))
+            plot_overlay(ax, r.preview, r.traces)
+            figs.append(_png(fig))
+        fig, ax = plt.subplots(figsize=(4, 4))
+        plot_traces(ax, r.traces)
+        figs.append(_png(fig))
+        fig, ax = plt.subplots(figsize=(4, 4))
+        ro = r.roughness
+        plot_psd(ax, ro.frequency_per_nm, ro.psd["edge"].mean(axis=0), r.floor_nm3, r.model, title="edge PSD")
+        figs.append(_png(fig))
+        parts.append("<div class='figs'>" + "".join(f"<img alt='figure' src='{u}'>" for u in figs) + "</div>")
+    parts.append("<p class='note'>Extra frames or a higher dose cut image noise but can shrink or damage resist "
+                 "lines, which changes the roughness being measured.</p></body></html>")
+    path = Path(path)
+    path.write_text("\n".join(parts), encoding="utf-8")
+    return path
