@@ -1,0 +1,150 @@
+"""The measure command end to end: numbers against truth, the output contract, the report."""
+import json
+import math
+from html.parser import HTMLParser
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from edges.io import write_micrograph, write_truth
+from edges.render import SEMSettings
+from roughness.cli import main
+from roughness.measure import measure
+from roughness.synth import simulate_line_space
+
+CONTRACT = ["image", "n_lines", "n_edges", "cd_nm", "edge_sigma_biased_nm", "edge_sigma_noise_nm",
+            "edge_sigma_unbiased_nm", "width_sigma_biased_nm", "width_sigma_noise_nm", "width_sigma_unbiased_nm",
+            "edge_correlation_length_nm", "edge_roughness_exponent", "noise_fraction", "status"]
+
+
+def _write_images(folder, rng, doses, n_rows=1024, n_cols=544, stem="img"):
+    folder.mkdir(parents=True, exist_ok=True)
+    truths = {}
+    for i, dose in enumerate(doses):
+        px, truth = simulate_line_space(n_rows=n_rows, n_cols=n_cols, pitch_nm=64, cd_nm=32, sigma_nm=1.2,
+                                        correlation_length_nm=8.0, roughness_exponent=0.6,
+                                        settings=SEMSettings(dose_per_pixel=dose, blur_nm=3.0), rng=rng)
+        path = write_micrograph(folder / f"{stem}_{i}.tif", px, pixel_size_nm=1.0)
+        write_truth(path.with_suffix(".truth.json"), truth)
+        truths[str(path)] = truth
+    return truths
+
+
+@pytest.mark.slow
+def test_end_to_end_against_truth(tmp_path, rng):
+    # 8 lines x 1024 rows per image; a high dose (CNR ~ 9) and a low dose (CNR ~ 3.4)
+    truths = _write_images(tmp_path / "in", rng, doses=[400, 60])
+    out = tmp_path / "out"
+    assert main(["measure", str(tmp_path / "in"), "--out", str(out), "--quiet"]) == 0
+    df = pd.read_csv(out / "summary.csv")
+    assert len(df) == 2 and (df["n_lines"] == 8).all()
+    for _, row in df.iterrows():
+        t = truths[row["image"]]
+        true_edge = math.sqrt(np.mean(t["edge_sigma_nm"] ** 2))
+        true_width = math.sqrt(np.mean(t["width_sigma_nm"] ** 2))
+        assert row["edge_sigma_unbiased_nm"] == pytest.approx(true_edge, rel=0.10)
+        assert row["width_sigma_unbiased_nm"] == pytest.approx(true_width, rel=0.10)
+    low = df.iloc[1]
+    t = truths[low["image"]]
+    true_edge = math.sqrt(np.mean(t["edge_sigma_nm"] ** 2))
+    # the low dose inflates the raw number by what the noise floor predicts: b^2 = truth^2 + n^2
+    assert low["edge_sigma_biased_nm"] > 1.1 * true_edge
+    assert low["edge_sigma_biased_nm"] ** 2 == pytest.approx(true_edge ** 2 + low["edge_sigma_noise_nm"] ** 2,
+                                                            rel=0.06)
+
+
+def test_contract_failures_and_exit_status(tmp_path, rng):
+    _write_images(tmp_path / "in", rng, doses=[300], n_rows=256, n_cols=330)
+    (tmp_path / "in" / "broken.tif").write_bytes(b"II*\x00 not really a tiff")
+    out = tmp_path / "out"
+    rc = main(["measure", str(tmp_path / "in" / "*.tif"), "--out", str(out), "--quiet", "--resamples", "200"])
+    assert rc == 3
+    df = pd.read_csv(out / "summary.csv")
+    assert set(CONTRACT) <= set(df.columns) and len(df) == 1
+    assert df["noise_fraction"].between(0, 1).all()
+    fail = pd.read_csv(out / "failures.csv")
+    assert list(fail["image"]) == [str(tmp_path / "in" / "broken.tif")]
+    assert "cannot be read" in fail["reason"][0]
+    edges = pd.read_csv(out / "edges.csv")
+    assert len(edges) == df["n_edges"][0] and {"sigma_unbiased_nm", "contrast_to_noise"} <= set(edges.columns)
+    psd = pd.read_csv(out / "psd.csv")
+    assert {"frequency_per_nm", "psd_biased_nm3", "noise_floor_nm3", "psd_unbiased_nm3", "psd_model_nm3"} <= set(psd.columns)
+    settings = json.loads((out / "settings.json").read_text())
+    assert settings["settings"]["detector"] == "model" and "numpy" in settings["versions"]
+    # all good -> 0 (and the stale failures.csv is gone); bad usage -> 2
+    assert main(["measure", str(tmp_path / "in" / "img_0.tif"), "--out", str(out), "--quiet", "--no-report",
+                 "--resamples", "100"]) == 0
+    assert not (out / "failures.csv").exists()
+    assert main(["measure", "--out", str(out)]) == 2
+    assert main(["measure", str(tmp_path / "in"), "--out", str(out), "--window-px", "10"]) == 2
+
+
+def test_settings_file_and_workers(tmp_path, rng):
+    _write_images(tmp_path / "in", rng, doses=[300, 300], n_rows=200, n_cols=330)
+    recipe = tmp_path / "site.toml"
+    recipe.write_text('detector = "threshold"\nn_resamples = 100\n')
+    out = tmp_path / "out"
+    assert main(["measure", str(tmp_path / "in"), "--out", str(out), "--settings", str(recipe), "--quiet",
+                 "--workers", "2", "--no-report"]) == 0
+    df = pd.read_csv(out / "summary.csv")
+    assert (df["detector"] == "threshold").all() and len(df) == 2
+    recipe.write_text('detectr = "threshold"\n')
+    assert main(["measure", str(tmp_path / "in"), "--out", str(out), "--settings", str(recipe)]) == 2
+
+
+class _Checker(HTMLParser):
+    VOID = {"img", "br", "meta", "hr", "input", "link"}
+
+    def __init__(self):
+        super().__init__()
+        self.stack, self.errors, self.srcs, self.hrefs = [], [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if "src" in a:
+            self.srcs.append(a["src"])
+        if "href" in a:
+            self.hrefs.append(a["href"])
+        if tag not in self.VOID:
+            self.stack.append(tag)
+
+    def handle_endtag(self, tag):
+        if not self.stack or self.stack[-1] != tag:
+            self.errors.append(tag)
+        else:
+            self.stack.pop()
+
+
+def test_report_is_self_contained_and_escaped(tmp_path, rng):
+    folder = tmp_path / "in"
+    folder.mkdir()
+    px, _ = simulate_line_space(n_rows=256, n_cols=330, settings=SEMSettings(dose_per_pixel=300), rng=rng)
+    hostile = folder / "lot<script>alert(1)<script>&'.tif"
+    write_micrograph(hostile, px, pixel_size_nm=1.0)
+    meas = measure([hostile], n_resamples=100)
+    path = meas.write(tmp_path / "out") / "report.html"
+    text = path.read_text()
+    chk = _Checker()
+    chk.feed(text)
+    assert not chk.errors and chk.stack == []
+    assert chk.srcs and all(s.startswith("data:image/png;base64,") for s in chk.srcs)
+    assert not chk.hrefs and "http" not in text.lower().replace("http-equiv", "")
+    assert "<script>" not in text and "lot&lt;script&gt;alert(1)&lt;script&gt;&amp;&#x27;.tif" in text
+
+
+@pytest.mark.slow
+def test_demo_runs_from_a_clean_directory(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["demo"]) == 0
+    out = tmp_path / "quietedge-demo"
+    assert (out / "report.html").exists()
+    df = pd.read_csv(out / "summary.csv")
+    assert len(df) == 6 and set(df["group"]) == {"low-dose", "high-dose"}
+    g = pd.read_csv(out / "groups.csv").set_index("group")
+    # noise inflates the raw low-dose number; the unbiased numbers of both doses agree within
+    # their intervals
+    assert g.loc["low-dose", "ler_3sigma_biased_nm"] > 1.1 * g.loc["high-dose", "ler_3sigma_biased_nm"]
+    lo_hi = g.loc["low-dose", ["edge_sigma_unbiased_low_nm", "edge_sigma_unbiased_high_nm"]]
+    assert lo_hi.iloc[0] <= g.loc["high-dose", "edge_sigma_unbiased_nm"] <= lo_hi.iloc[1]
+    assert "report:" in capsys.readouterr().out
