@@ -2,14 +2,17 @@
 
 Passes over all rows of all edges at once (batched, no loop over rows):
 
-1. **coarse**: a plain blurred step, starting from the located guesses after a 7-point grid
-   search; gives rough positions and each edge's centre line (windows are then re-centred);
-2. **shape**: the row-aligned mean profile of each edge gives its shape (parametric or step fit;
-   the template adds a smoothed correction), fitted once per edge;
-3. **unweighted**: position, gain, offset per row with that shape; the residuals give the
-   image's noise model ``var = c0 + c1 * signal`` (shot noise makes the variance follow the
-   signal) and the shape is refitted, corrected for the self-alignment sharpening;
-4. **weighted**: weights ``1 / var(model of pass 3)``; each position's variance is
+1. **coarse**: a plain blurred step, starting from the located guesses after a grid search
+   over the window; gives rough positions and each edge's straight centre line;
+2. **shape**: one shape per side (left edges, right edges; pooled over the image's lines) from
+   the mean profile aligned on the centre lines, with the roughness blur removed; an unweighted
+   pass with it; then each row's window is re-centred on that row's estimate and the shape is
+   refitted on the self-aligned profile, corrected for the sharpening that self-alignment
+   causes (:func:`edges.profiles.adjust_blur`);
+3. **unweighted** pass with the final shape: its residuals give the image's noise model
+   ``var = c0 + c1 * signal`` (shot noise makes the variance follow the signal) and the noise
+   correlation along the scan;
+4. **weighted** pass, weights ``1 / var(model of pass 3)``; each position's variance is
    ``1 / (J_p^T W J_p)``, or the sandwich ``q^T C q / (J_p^T W J_p)^2`` (q = W J_p) when the
    noise is correlated along the scan, C that of a first-order detector filter,
    C_(i,i+l) = a^l var_i, with a estimated from the residuals by the method of moments (the
@@ -186,7 +189,7 @@ def _safe_shift(centres, z, profile):
         return 0.0
 
 
-def _noise_model(win, res, ok, scan_filter=0.0):
+def _noise_model(win, res, ok, table, scan_filter=0.0):
     """var(signal) = c0 + c1 * signal from unweighted residuals, pooled over the image.
 
     Each squared residual is divided by (1 - h_ii), h the row's hat matrix for (x0, offset,
@@ -196,7 +199,7 @@ def _noise_model(win, res, ok, scan_filter=0.0):
     is regressed on then (shot noise from a bright side spills into the dark side).
     Returns c0, c1 and the signal that the variance is a function of, per pixel.
     """
-    mu, dmu = res.table.evaluate(win.edge, win.cols - res.x0[:, None])
+    mu, dmu = table.evaluate(win.edge, win.cols - res.x0[:, None])
     model = res.offset[:, None] + res.gain[:, None] * mu
     X = np.stack([-res.gain[:, None] * dmu, np.ones_like(mu), mu], axis=2) * win.mask[:, :, None]
     G = np.swapaxes(X, 1, 2) @ X
@@ -231,7 +234,7 @@ def _noise_model(win, res, ok, scan_filter=0.0):
     return float(c0), float(c1), model
 
 
-def _scan_correlation(win, res, ok, var, rng_seed=0):
+def _scan_correlation(win, res, ok, var, table, rng_seed=0):
     """Noise correlation along the scan, R_ij = gamma0 * a^|i-j| (first-order detector filter).
 
     Normalised residuals e = D^(-1/2) r of the unweighted fit have E[e e^T] = M R M^T with
@@ -247,7 +250,7 @@ def _scan_correlation(win, res, ok, var, rng_seed=0):
         return 1.0, 0.0, np.inf
     sample = full if full.size <= 1500 else np.random.default_rng(rng_seed).choice(full, 1500, replace=False)
     sample.sort()
-    mu, dmu = res.table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
+    mu, dmu = table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
     X = np.stack([-res.gain[sample, None] * dmu, np.ones_like(mu), mu], axis=2)
     Xt = np.swapaxes(X, 1, 2)
     H = X @ np.linalg.solve(Xt @ X, Xt)
@@ -388,17 +391,16 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         x_start = np.where(ok, res.x0, centres.ravel()) + shift2[e_idx]
         res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
                          max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
-        res.table = table
         ok = _row_ok(res, win)
-        c0, c1, model_c = _noise_model(win, res, ok)
+        c0, c1, model_c = _noise_model(win, res, ok, table)
         var = np.maximum(c0 + c1 * model_c, 1e-12)
         gamma0, a_scan, a_se = 1.0, 0.0, np.inf
         if noise_correlation == "auto":
-            gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var)
+            gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var, table)
             if a_scan > 4 * a_se:     # refit the variance on the filtered signal, then R again
-                c0, c1, model_c = _noise_model(win, res, ok, scan_filter=a_scan)
+                c0, c1, model_c = _noise_model(win, res, ok, table, scan_filter=a_scan)
                 var = np.maximum(c0 + c1 * model_c, 1e-12)
-                gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var)
+                gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var, table)
         correlated = abs(a_scan) > 4 * a_se
         n_lags = 2 * hmax if correlated else 0
         # 4. weighted pass
