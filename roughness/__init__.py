@@ -1,5 +1,5 @@
 """Roughness side of quietedge: edge traces in; unbiased LER/LWR, PSDs, models, reports out."""
-from .measure import Measurement, MeasureSettings, measure
+from ._measure import Measurement, MeasureSettings, measure
 from .model import PSDModelFit, correlation_length_from_acf, fit_psd_model
 from .noise import floors_disagree, noise_floor_nm3, noise_variance_nm2, plateau_floor
 from .psd import detrend, periodogram

@@ -10,7 +10,7 @@ EXIT_OK, EXIT_USAGE, EXIT_SOME_FAILED = 0, 2, 3
 
 
 def _add_measure_options(p):
-    from .measure import MeasureSettings
+    from ._measure import MeasureSettings
 
     d = MeasureSettings()
     p.add_argument("--out", required=True, type=Path, help="output folder (created if missing)")
@@ -40,6 +40,9 @@ def _add_measure_options(p):
     p.add_argument("--confidence", type=float, default=None,
                    help=f"confidence level of the intervals (default {d.confidence})")
     p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    p.add_argument("--resume", action="store_true",
+                   help="reuse the per-image results kept in OUT/per_image from an earlier or interrupted "
+                        "run with the same settings; only the missing images are measured")
     p.add_argument("--no-report", action="store_true", help="write the tables only")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary table")
 
@@ -62,7 +65,7 @@ def add_parsers(sub) -> None:
 
 
 def _settings(args):
-    from .measure import MeasureSettings
+    from ._measure import MeasureSettings
 
     names = {f.name for f in fields(MeasureSettings)}
     given = {}
@@ -98,11 +101,13 @@ def _print_headline(meas, out):
 
 
 def _run_measure(args, groups=None):
-    from .measure import measure
+    from ._measure import measure
 
     settings = _settings(args)
+    if args.workers < 1:
+        raise ValueError(f"--workers {args.workers}: must be >= 1")
     meas = measure(None if groups else args.images, groups=groups, settings=settings, workers=args.workers,
-                   progress=not args.quiet)
+                   progress=not args.quiet, cache_dir=args.out / "per_image", resume=args.resume)
     meas.write(args.out, report=not args.no_report)
     if not args.quiet:
         _print_headline(meas, args.out)

@@ -62,6 +62,7 @@ def summary_table(meas) -> pd.DataFrame:
         codes = [c for c, _ in r.warnings]
         status = "below_noise" if r.summary["edge_status"] == "below_noise" else ("warning" if codes else "ok")
         row.update({
+            "edge_sigma_model_finite_nm": r.model_sigma_finite_nm,
             "noise_floor_nm3": r.floor_nm3, "plateau_nm3": r.plateau_nm3, "floors_disagree": r.floors_disagree,
             "rows": t.n_rows, "invalid_rows": int(np.count_nonzero(~t.valid)),
             "bridged_rows": r.roughness.bridged_rows,
@@ -81,7 +82,7 @@ def _summary_columns():
                   "sigma_unbiased_high_nm", "var_unbiased_nm2", "status"):
             dummy[f"{q}_{k}"] = 0
     cols = list(_stat_columns(dummy, None).keys())
-    return base + cols + ["noise_floor_nm3", "plateau_nm3", "floors_disagree", "rows", "invalid_rows",
+    return base + cols + ["edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "rows", "invalid_rows",
                           "bridged_rows", "excluded_edges", "detector", "status", "warnings"]
 
 

@@ -15,7 +15,7 @@ import numpy as np
 from edges.io import write_micrograph, write_truth
 from edges.render import SEMSettings
 
-from .measure import measure
+from ._measure import measure
 from .synth import simulate_line_space
 
 __all__ = ["run_demo", "DEMO_DOSES"]

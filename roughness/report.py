@@ -88,7 +88,7 @@ def _ci(v, q):
     return f"{_fmt(3 * lo)} to {_fmt(3 * hi)}" if np.isfinite(lo) and np.isfinite(hi) else "n/a"
 
 
-def _table(v, model, confidence):
+def _table(v, model, confidence, finite_nm=math.nan):
     esc = html.escape
     rows = []
     for q, name in (("edge", "LER (edges)"), ("width", "LWR (widths)"), ("centre", "line placement (centres)")):
@@ -104,6 +104,10 @@ def _table(v, model, confidence):
         extra.append(f"PSD(0) {_fmt(model.psd0_nm3, 1)} nm<sup>3</sup> one-sided "
                      f"({_fmt(model.psd0_two_sided_nm3, 1)} nm<sup>3</sup> two-sided, as usually quoted)")
         extra.append(f"sigma of an infinitely long edge (model) {_fmt(model.sigma_nm)} nm")
+        if np.isfinite(finite_nm) and model.sigma_nm > 0:
+            extra.append(f"over the measured length, after detrending, the model expects {_fmt(finite_nm)} nm "
+                         f"({_fmt(100 * (finite_nm / model.sigma_nm - 1), 1)}%: a finite, detrended line always "
+                         "shows less roughness than an infinitely long one)")
     extra.append(f"CD {_fmt(v['cd_nm'])} nm; left/right edge correlation {_fmt(v['lr_correlation_unbiased'])} "
                  f"(noise-corrected; {_fmt(v['lr_correlation_biased'])} as measured)")
     extra.append(f"{v['n_lines']} lines, {v['n_edges']} edges, {v['n_images']} image(s)")
@@ -194,7 +198,7 @@ def write_report(meas, path, *, max_image_sections: int = 12) -> Path:
         parts.append(f"<h2>{esc(r.name)}</h2>")
         for code, text in r.warnings:
             parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
-        parts.append(_table(r.summary.values, r.model, r.summary.confidence))
+        parts.append(_table(r.summary.values, r.model, r.summary.confidence, r.model_sigma_finite_nm))
         figs = []
         if r.preview is not None:
             fig, ax = plt.subplots(figsize=(4, 4))

@@ -10,7 +10,7 @@ import pytest
 from edges.io import write_micrograph, write_truth
 from edges.render import SEMSettings
 from roughness.cli import main
-from roughness.measure import measure
+from roughness._measure import measure
 from roughness.synth import simulate_line_space
 
 CONTRACT = ["image", "n_lines", "n_edges", "cd_nm", "edge_sigma_biased_nm", "edge_sigma_noise_nm",
@@ -148,3 +148,23 @@ def test_demo_runs_from_a_clean_directory(tmp_path, monkeypatch, capsys):
     lo_hi = g.loc["low-dose", ["edge_sigma_unbiased_low_nm", "edge_sigma_unbiased_high_nm"]]
     assert lo_hi.iloc[0] <= g.loc["high-dose", "edge_sigma_unbiased_nm"] <= lo_hi.iloc[1]
     assert "report:" in capsys.readouterr().out
+
+
+def test_results_stream_to_disk_and_resume(tmp_path, rng, monkeypatch):
+    _write_images(tmp_path / "in", rng, doses=[300, 300], n_rows=200, n_cols=330)
+    out = tmp_path / "out"
+    args = ["measure", str(tmp_path / "in"), "--out", str(out), "--quiet", "--no-report", "--resamples", "100"]
+    assert main(args) == 0
+    assert len(list((out / "per_image").glob("*.pkl"))) == 2
+    first = pd.read_csv(out / "summary.csv")
+    # a resumed run measures nothing again: make measuring impossible and compare
+    import roughness._measure as rm
+
+    def refuse(*a, **k):
+        raise AssertionError("measured again")
+
+    monkeypatch.setattr(rm, "_measure_one", refuse)
+    assert main(args + ["--resume"]) == 0
+    pd.testing.assert_frame_equal(pd.read_csv(out / "summary.csv"), first)
+    # a changed recipe is not taken from the cache (the refusing measurer records failures)
+    assert main(args + ["--resume", "--detrend", "mean"]) == 3

@@ -1,6 +1,6 @@
 """The main job: SEM images in, unbiased roughness tables, PSDs and a report out.
 
-``measure(images, pixel_size_nm=..., ...)`` takes file paths, folders, glob patterns, arrays or
+``roughness.measure(images, pixel_size_nm=..., ...)`` takes file paths, folders, glob patterns, arrays or
 :class:`edges.Micrograph` objects and returns a :class:`Measurement`; ``Measurement.write(out)``
 writes the output contract of DESIGN.md (``summary.csv``, ``edges.csv``, ``psd.csv``,
 ``failures.csv`` when any image failed, ``settings.json``, ``report.html``).  One bad image never
@@ -23,7 +23,7 @@ from edges.io import read_micrograph
 
 from .model import correlation_length_from_acf, fit_psd_model
 from .noise import floors_disagree, plateau_floor
-from .stats import analyse_traces, summarize
+from .stats import analyse_traces, expected_measured_variance, summarize
 
 __all__ = ["MeasureSettings", "ImageResult", "Measurement", "measure", "expand_inputs"]
 
@@ -107,6 +107,7 @@ class ImageResult:
     plateau_sd_nm3: float
     floor_nm3: float
     floors_disagree: bool
+    model_sigma_finite_nm: float = math.nan   # the model's expected sigma over this length, detrended
     warnings: list = field(default_factory=list)
     preview: np.ndarray | None = None      # the image (rows x cols, possibly cropped) for figures
     group: str = ""
@@ -250,6 +251,12 @@ def _measure_one(item, k, settings: MeasureSettings, group: str = ""):
                               window=settings.psd_window, n_resamples=settings.model_resamples, rng=rng)
     except (ValueError, RuntimeError):
         model = None
+    finite = math.nan
+    if model is not None and np.isfinite(model.roughness_exponent):
+        finite = math.sqrt(expected_measured_variance(
+            sigma_nm=model.sigma_nm, correlation_length_nm=model.correlation_length_nm,
+            roughness_exponent=model.roughness_exponent, n_rows=rough.n_rows,
+            row_spacing_nm=rough.row_spacing_nm, detrend=settings.detrend))
     floor = float(np.mean(rough.psd["edge_floor"]))
     tail = model.model_nm3(rough.frequency_per_nm) if model is not None else None
     plateau, plateau_sd = plateau_floor(rough.frequency_per_nm, rough.psd["edge"].mean(axis=0),
@@ -271,10 +278,11 @@ def _measure_one(item, k, settings: MeasureSettings, group: str = ""):
         warns.append(("scan_along_lines", "the lines run along the scan direction: noise correlated along the scan "
                                           "correlates neighbouring samples of each edge"))
     pixels = m.pixels.T if lay_rotated else m.pixels
-    preview = pixels[: min(pixels.shape[0], 512)].astype(np.float32)
+    preview = pixels[: min(pixels.shape[0], 384)].astype(np.float16)   # for figures only
     return ImageResult(name=name, traces=traces, roughness=rough, summary=summ, model=model,
                        acf_correlation_length_nm=xi_acf, plateau_nm3=plateau, plateau_sd_nm3=plateau_sd,
-                       floor_nm3=floor, floors_disagree=disagree, warnings=warns, preview=preview, group=group)
+                       floor_nm3=floor, floors_disagree=disagree, model_sigma_finite_nm=finite, warnings=warns,
+                       preview=preview, group=group)
 
 
 def _safe_measure(args):
@@ -286,9 +294,53 @@ def _safe_measure(args):
         return None, (_name(item, k), reason)
 
 
+def _cache_key(name, group, settings) -> str:
+    import hashlib
+    import json
+
+    text = json.dumps({"image": name, "group": group, "settings": asdict(settings)}, sort_keys=True)
+    return hashlib.sha1(text.encode()).hexdigest()[:20]
+
+
+class _Cache:
+    """One pickle per measured image, written as soon as it is done (streaming), so that an
+    interrupted batch loses nothing and ``resume`` measures only what is missing.  Keys hash
+    the image name, its group and every setting, so a changed recipe is measured afresh."""
+
+    def __init__(self, folder, resume):
+        self.folder = Path(folder)
+        self.folder.mkdir(parents=True, exist_ok=True)
+        self.resume = resume
+
+    def _path(self, job):
+        item, k, settings, group = job
+        return self.folder / f"{_cache_key(_name(item, k), group, settings)}.pkl"
+
+    def load(self, job):
+        import pickle
+
+        path = self._path(job)
+        if self.resume and path.exists():
+            try:
+                with open(path, "rb") as fh:
+                    return pickle.load(fh)
+            except Exception:      # a truncated file from a killed run: measure again
+                return None
+        return None
+
+    def store(self, job, result):
+        import pickle
+
+        path = self._path(job)
+        tmp = path.with_suffix(".tmp")
+        with open(tmp, "wb") as fh:
+            pickle.dump(result, fh, protocol=pickle.HIGHEST_PROTOCOL)
+        tmp.replace(path)          # atomic: a reader never sees half a result
+
+
 def measure(images, *, pixel_size_nm: float | None = None, groups: dict | None = None,
             workers: int = 1, progress: bool = False, settings: MeasureSettings | None = None,
-            **options) -> Measurement:
+            cache_dir=None, resume: bool = False, **options) -> Measurement:
     """Measure roughness on SEM images.
 
     Parameters
@@ -305,6 +357,12 @@ def measure(images, *, pixel_size_nm: float | None = None, groups: dict | None =
         Show a progress bar (tqdm) on stderr.
     settings : MeasureSettings, optional
         A full recipe; keyword ``options`` (field names of MeasureSettings) override it.
+    cache_dir : path, optional
+        Store each image's result there as soon as it is measured (a pickle per image; about
+        1-2 MB for a 1024 x 1024 image).
+    resume : bool
+        With ``cache_dir``: load the images already measured with the same settings instead of
+        measuring them again.
 
     Returns
     -------
@@ -330,29 +388,45 @@ def measure(images, *, pixel_size_nm: float | None = None, groups: dict | None =
     if not jobs:
         raise ValueError("no images given")
     results, failures = [], []
+    cache = _Cache(cache_dir, resume) if cache_dir is not None else None
+    todo = []
+    for job in jobs:
+        hit = cache.load(job) if cache else None
+        if hit is not None:
+            results.append(hit)
+        else:
+            todo.append(job)
     bar = None
     if progress:
         from tqdm import tqdm
 
-        bar = tqdm(total=len(jobs), unit="image", desc="measuring")
+        bar = tqdm(total=len(jobs), initial=len(jobs) - len(todo), unit="image", desc="measuring")
+
+    def done(job, res, fail):
+        if res is not None:
+            results.append(res)
+            if cache:
+                cache.store(job, res)
+        else:
+            failures.append(fail)
+        if bar:
+            bar.update()
+
     try:
-        if workers > 1 and len(jobs) > 1:
+        if workers > 1 and len(todo) > 1:
             from concurrent.futures import ProcessPoolExecutor
 
             with ProcessPoolExecutor(max_workers=workers) as pool:
-                for res, fail in pool.map(_safe_measure, jobs):
-                    (results.append(res) if res is not None else failures.append(fail))
-                    if bar:
-                        bar.update()
+                for job, (res, fail) in zip(todo, pool.map(_safe_measure, todo)):
+                    done(job, res, fail)
         else:
-            for job in jobs:
-                res, fail = _safe_measure(job)
-                (results.append(res) if res is not None else failures.append(fail))
-                if bar:
-                    bar.update()
+            for job in todo:
+                done(job, *_safe_measure(job))
     finally:
         if bar:
             bar.close()
+    order = {_name(j[0], j[1]): i for i, j in enumerate(jobs)}
+    results.sort(key=lambda r: order.get(r.name, 0))
     meas = Measurement(images=results, failures=failures, settings=settings)
     _pool(meas)
     return meas
