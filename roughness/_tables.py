@@ -18,7 +18,26 @@ import pandas as pd
 __all__ = ["summary_table", "edges_table", "psd_table", "failures_table", "groups_table", "write_outputs"]
 
 
-def _stat_columns(v, model, xi_acf=math.nan):
+NOISE_TARGET = 0.10        # noise share the "frames needed" column aims at
+SD_TARGET = 0.05           # relative sd of the unbiased edge sigma the "lines needed" column aims at
+
+
+def _plan(v, model, line_length_nm, row_spacing_nm):
+    from .stats import frames_for_noise_fraction, sampling_plan
+
+    frames = lines = math.nan
+    vu, sn = v["edge_var_unbiased_nm2"], v["edge_sigma_noise_nm"]
+    if np.isfinite(vu) and vu > 0 and np.isfinite(sn):
+        frames = frames_for_noise_fraction(noise_var_nm2=sn ** 2, unbiased_var_nm2=vu, target_fraction=NOISE_TARGET)
+        if model is not None and np.isfinite(model.roughness_exponent) and np.isfinite(line_length_nm):
+            lines = sampling_plan(sigma_unbiased_nm=math.sqrt(vu), correlation_length_nm=model.correlation_length_nm,
+                                  roughness_exponent=model.roughness_exponent, noise_sigma_nm=sn,
+                                  row_spacing_nm=row_spacing_nm, line_length_nm=line_length_nm,
+                                  target_relative_sd=SD_TARGET)["lines_needed"]
+    return {"frames_for_10pct_noise": frames, "lines_for_5pct_sd": lines}
+
+
+def _stat_columns(v, model, xi_acf=math.nan, line_length_nm=math.nan, row_spacing_nm=math.nan):
     row = {
         "n_lines": v["n_lines"], "n_edges": v["n_edges"],
         "cd_nm": v["cd_nm"], "cd_low_nm": v["cd_low_nm"], "cd_high_nm": v["cd_high_nm"],
@@ -47,9 +66,11 @@ def _stat_columns(v, model, xi_acf=math.nan):
         "edge_psd0_nm3": model.psd0_nm3 if model else nan,
         "edge_psd0_two_sided_nm3": model.psd0_two_sided_nm3 if model else nan,
         "edge_correlation_length_acf_nm": xi_acf,
+        "edge_psd_floor_mode": model.floor_mode if model else "",
         "noise_fraction": v["edge_noise_fraction"],
         "width_noise_fraction": v["width_noise_fraction"],
     })
+    row.update(_plan(v, model, line_length_nm, row_spacing_nm))
     return row
 
 
@@ -58,7 +79,9 @@ def summary_table(meas) -> pd.DataFrame:
     for r in meas.images:
         t = r.traces
         row = {"image": r.name, "group": r.group}
-        row.update(_stat_columns(r.summary.values, r.model, r.acf_correlation_length_nm))
+        ro = r.roughness
+        row.update(_stat_columns(r.summary.values, r.model, r.acf_correlation_length_nm,
+                                 ro.n_rows * ro.row_spacing_nm, ro.row_spacing_nm))
         codes = [c for c, _ in r.warnings]
         status = "below_noise" if r.summary["edge_status"] == "below_noise" else ("warning" if codes else "ok")
         row.update({
@@ -88,6 +111,7 @@ def _summary_columns():
 
 def groups_table(meas) -> pd.DataFrame:
     """One row per group (all images pooled, images resampled), or one row 'all'."""
+    from ._measure import floor_mode
     from .model import fit_psd_model
     from .stats import summarize
 
@@ -104,11 +128,12 @@ def groups_table(meas) -> pd.DataFrame:
                                   np.concatenate([r.roughness.psd["edge"] for r in same]),
                                   np.concatenate([r.roughness.psd["edge_floor"] for r in same]),
                                   window=s.psd_window, n_resamples=s.model_resamples,
-                                  rng=np.random.default_rng(s.seed))
+                                  floor=floor_mode([r.traces for r in same]), rng=np.random.default_rng(s.seed))
         except (ValueError, RuntimeError):
             model = None
         row = {"group": g or "all", "n_images": len(members)}
-        row.update(_stat_columns(summ.values, model))
+        ro = same[0].roughness
+        row.update(_stat_columns(summ.values, model, math.nan, ro.n_rows * ro.row_spacing_nm, ro.row_spacing_nm))
         rows.append(row)
     return pd.DataFrame(rows)
 

@@ -1,8 +1,8 @@
 """Fit of the self-affine PSD model: PSD(0), correlation length, roughness exponent.
 
 The *biased* averaged PSD is fitted with ``S1(f; sigma, xi, H) + N``, N the noise floor from the
-fit covariance (fixed), by least squares on logarithms with the expected offset of a log of an
-average of M exponential ordinates, psi(M) - ln M, taken into the model (METHODS 4.3).  Bins
+fit covariance (fixed, or free where the covariance is not claimed calibrated), by maximising the
+Whittle likelihood of the averaged periodogram (METHODS 4.3).  Bins
 k = 0..3 are left out (detrending and window leakage).  PSD(0) is a model parameter, never read
 from bin 0.  Reported one-sided (quietedge's convention) and two-sided (the literature's).
 Uncertainties: bootstrap over traces (curve_fit's covariance assumes independent bins, and
@@ -20,7 +20,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, special
+from scipy import optimize
 
 from ._selfaffine import psd0_two_sided, self_affine_psd, two_sided_from_one_sided
 
@@ -43,6 +43,10 @@ class PSDModelFit:
     h_determined : bool
     fit_min_per_nm, fit_max_per_nm : float
         Frequency range used.
+    floor_nm3 : float
+        Noise floor in the model (the covariance's, or the fitted one).
+    floor_mode : str
+        ``"fixed"`` or ``"free"``.
     """
 
     sigma_nm: float
@@ -57,6 +61,8 @@ class PSDModelFit:
     h_determined: bool
     fit_min_per_nm: float
     fit_max_per_nm: float
+    floor_nm3: float = math.nan
+    floor_mode: str = "fixed"
 
     def model_nm3(self, frequency_per_nm):
         """One-sided model PSD (roughness only) at the given frequencies."""
@@ -65,22 +71,43 @@ class PSDModelFit:
                                roughness_exponent=self.roughness_exponent)
 
 
-def _fit_once(f, p, floor, m_eff, start):
-    offset = special.digamma(m_eff) - math.log(m_eff)
-    lp = np.log(p)
+def _fit_once(f, p, floor, m_eff, start, free_floor=False, extra_starts=True):
+    """Whittle fit: minimise sum_k [ln M_k + P_k / M_k] over (ln sigma, ln xi, H[, ln floor]).
 
-    def resid(theta):
+    The Whittle likelihood is the exact likelihood of independent exponential (or averaged,
+    Gamma) periodogram ordinates, so unlike least squares on logarithms it needs no correction
+    for the mean of a log and stays unbiased with the few traces of one image (Whittle 1953;
+    METHODS 4.3).  ``m_eff`` does not change the optimum; it is kept for the interface.
+    """
+    def cost(theta):
         s, xi, h = math.exp(theta[0]), math.exp(theta[1]), theta[2]
-        model = self_affine_psd(f, sigma_nm=s, correlation_length_nm=xi, roughness_exponent=h) + floor
-        return lp - np.log(model) - offset
+        n = math.exp(theta[3]) if free_floor else floor
+        model = self_affine_psd(f, sigma_nm=s, correlation_length_nm=xi, roughness_exponent=h) + n
+        return float(np.sum(np.log(model) + p / model))
 
-    r = optimize.least_squares(resid, start, bounds=([-10, -5, 0.05], [10, 12, 2.0]), method="trf")
-    return np.array([math.exp(r.x[0]), math.exp(r.x[1]), r.x[2]])
+    lo, hi = [-10, -5, 0.05], [10, 12, 2.0]
+    start = list(start)
+    if free_floor:
+        ln = math.log(max(floor, 1e-12))
+        start, lo, hi = start + [ln], lo + [ln - 5], hi + [ln + 5]
+    best = None
+    for h0 in ((start[2], 0.4, 1.0) if extra_starts else (start[2],)):   # the cost is not convex in H
+        r = optimize.minimize(cost, start[:2] + [h0] + start[3:], bounds=list(zip(lo, hi)), method="L-BFGS-B")
+        if best is None or r.fun < best.fun:
+            best = r
+    n = math.exp(best.x[3]) if free_floor else floor
+    return np.array([math.exp(best.x[0]), math.exp(best.x[1]), best.x[2], n])
 
 
 def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann", skip_bins: int = 4,
-                  n_resamples: int = 100, rng: np.random.Generator | None = None) -> PSDModelFit:
+                  n_resamples: int = 100, floor: str = "fixed",
+                  rng: np.random.Generator | None = None) -> PSDModelFit:
     """Fit sigma, xi, H to the biased PSDs of several traces.
+
+    ``floor="fixed"`` holds the noise floor at ``floor_nm3`` (the fit covariance's);
+    ``floor="free"`` fits it too, starting there.  Free is the choice where the covariance is
+    not claimed calibrated (contrast-to-noise below about 5 it under-states the scatter by a
+    few per cent, and a floor 10% low already pulls H down by ~0.1).
 
     Parameters
     ----------
@@ -93,6 +120,8 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
     f = np.asarray(frequency_per_nm, float)
     p = np.atleast_2d(np.asarray(psd_nm3, float))
     floors = np.broadcast_to(np.asarray(floor_nm3, float), (p.shape[0],))
+    if floor not in ("fixed", "free"):
+        raise ValueError(f"floor={floor!r}: must be 'fixed' or 'free'")
     n_tr, n_f = p.shape
     if n_tr < 1 or n_f < skip_bins + 6:
         raise ValueError(f"psd_nm3 of shape {p.shape}: needs at least one trace and {skip_bins + 6} bins")
@@ -102,29 +131,32 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
     # neighbouring Hann bins correlate 0.44: an average of M traces acts like M / 1.9
     m_eff = max(n_tr / (1.9 if window == "hann" else 1.0), 1.0)
 
-    def fit(rows):
+    def fit(rows, around=None):
         mean = p[rows].mean(axis=0)
-        floor = float(floors[rows].mean())
-        var0 = float(np.sum(mean[1:] - floor) * (f[1] - f[0]))
+        floor_ = float(floors[rows].mean())
+        var0 = float(np.sum(mean[1:] - floor_) * (f[1] - f[0]))
         s0 = math.sqrt(max(var0, 1e-6))
         # xi start from the half-power point of the floor-corrected spectrum
-        roughness = mean - floor
+        roughness = mean - floor_
         half = np.flatnonzero(roughness[sel] < 0.5 * np.max(roughness[sel][:3]))
         f_half = f[sel][half[0]] if half.size else f[sel][-1] / 4
         xi0 = 1.0 / (2 * math.pi * max(f_half, 1e-6))
         good = sel & (mean > 0)
-        return _fit_once(f[good], mean[good], floor, m_eff, [math.log(s0), math.log(xi0), 0.7]), floor
+        start = [math.log(s0), math.log(xi0), 0.7] if around is None else \
+            [math.log(around[0]), math.log(around[1]), around[2]]
+        return _fit_once(f[good], mean[good], floor_, m_eff, start, free_floor=floor == "free",
+                         extra_starts=around is None)
 
-    theta, floor = fit(np.arange(n_tr))
+    theta = fit(np.arange(n_tr))
     boots = []
     if n_resamples and n_tr >= 5:
         for _ in range(n_resamples):
-            boots.append(fit(rng.integers(0, n_tr, n_tr))[0])
+            boots.append(fit(rng.integers(0, n_tr, n_tr), around=theta)[:3])   # resamples start at the fit
     boots = np.array(boots) if boots else np.full((1, 3), np.nan)
     se = np.nanstd(boots, axis=0, ddof=1) if boots.shape[0] > 1 else np.full(3, np.nan)
-    s, xi, h = theta
+    s, xi, h, floor_used = theta
     model = self_affine_psd(f, sigma_nm=s, correlation_length_nm=xi, roughness_exponent=h)
-    above = np.flatnonzero(model[1:] > floor)
+    above = np.flatnonzero(model[1:] > floor_used)
     f_max = f[1:][above[-1]] if above.size else f[1]
     # the tail must rise above the floor well past the knee, and the resamples must agree
     determined = bool(2 * math.pi * xi * f_max >= 5 and not (se[2] > 0.2))
@@ -136,7 +168,8 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
                        sigma_se_nm=float(se[0]), correlation_length_se_nm=float(se[1]),
                        roughness_exponent_se=float(se[2]) if determined else math.nan,
                        psd0_se_nm3=float(np.std(psd0_boot, ddof=1)) if psd0_boot.size > 1 else math.nan,
-                       h_determined=determined, fit_min_per_nm=float(f[sel][0]), fit_max_per_nm=float(f[sel][-1]))
+                       h_determined=determined, fit_min_per_nm=float(f[sel][0]), fit_max_per_nm=float(f[sel][-1]),
+                       floor_nm3=float(floor_used), floor_mode=floor)
 
 
 def correlation_length_from_acf(acf_nm2, *, noise_var_nm2: float, row_spacing_nm: float) -> float:

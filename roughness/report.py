@@ -100,7 +100,14 @@ def _table(v, model, confidence, finite_nm=math.nan):
     if model is not None:
         extra.append(f"correlation length {_fmt(model.correlation_length_nm, 1)} &plusmn; "
                      f"{_fmt(model.correlation_length_se_nm, 1)} nm")
-        extra.append(f"roughness exponent {_fmt(model.roughness_exponent)} &plusmn; {_fmt(model.roughness_exponent_se)}")
+        if model.h_determined:
+            extra.append(f"roughness exponent {_fmt(model.roughness_exponent)} &plusmn; {_fmt(model.roughness_exponent_se)}")
+        else:
+            extra.append("roughness exponent not determined: the roughness tail does not rise far enough above the "
+                         "noise floor (more frames, more lines or a smaller pixel would help)")
+        if model.floor_mode == "free":
+            extra.append("the PSD model's noise floor was fitted, not fixed to the fit covariance's "
+                         "(contrast-to-noise below 5, where the covariance under-states the scatter)")
         extra.append(f"PSD(0) {_fmt(model.psd0_nm3, 1)} nm<sup>3</sup> one-sided "
                      f"({_fmt(model.psd0_two_sided_nm3, 1)} nm<sup>3</sup> two-sided, as usually quoted)")
         extra.append(f"sigma of an infinitely long edge (model) {_fmt(model.sigma_nm)} nm")
@@ -166,16 +173,21 @@ def write_report(meas, path, *, max_image_sections: int = 12) -> Path:
             from ._tables import groups_table
 
             gt = groups_table(meas)
-            parts.append("<h2>Groups side by side</h2><table><tr><th>group</th><th>images</th>"
+            parts.append("<h2>Groups side by side</h2><p class='note'>3&sigma; in nm. Frames: how many frames "
+                         "(averaged) would bring the noise share below 10%, assuming noise variance falls as "
+                         "1/frames. Lines: how many lines of this length give &plusmn;5% (1 sd) on the unbiased "
+                         "edge sigma.</p><table><tr><th>group</th><th>images</th>"
                          "<th>LER 3&sigma; biased</th><th>LER 3&sigma; unbiased</th><th>LWR 3&sigma; biased</th>"
-                         "<th>LWR 3&sigma; unbiased</th><th>noise share</th><th>xi (nm)</th><th>H</th></tr>")
+                         "<th>LWR 3&sigma; unbiased</th><th>noise share</th><th>xi (nm)</th><th>H</th>"
+                         "<th>frames</th><th>lines</th></tr>")
             for _, g in gt.iterrows():
                 parts.append(f"<tr><td>{esc(str(g['group']))}</td><td>{g['n_images']}</td>"
                              f"<td>{_fmt(g['ler_3sigma_biased_nm'])}</td><td><b>{_fmt(g['ler_3sigma_unbiased_nm'])}</b>"
                              f"</td><td>{_fmt(g['lwr_3sigma_biased_nm'])}</td><td><b>{_fmt(g['lwr_3sigma_unbiased_nm'])}"
                              f"</b></td><td>{_fmt(100 * g['noise_fraction'], 0)}%</td>"
                              f"<td>{_fmt(g['edge_correlation_length_nm'], 1)}</td>"
-                             f"<td>{_fmt(g['edge_roughness_exponent'])}</td></tr>")
+                             f"<td>{_fmt(g['edge_roughness_exponent'])}</td>"
+                             f"<td>{_fmt(g['frames_for_10pct_noise'], 1)}</td><td>{_fmt(g['lines_for_5pct_sd'], 0)}</td></tr>")
             parts.append("</table>")
             fig, ax = plt.subplots(figsize=(6, 3))
             x = np.arange(len(gt))
