@@ -28,6 +28,7 @@ from .stats import analyse_traces, expected_measured_variance, summarize
 __all__ = ["MeasureSettings", "ImageResult", "Measurement", "measure", "expand_inputs"]
 
 IMAGE_SUFFIXES = (".tif", ".tiff", ".png")
+REPORT_IMAGES = 12          # images that get their own section (and figures) in the report
 
 
 @dataclass(frozen=True)
@@ -440,6 +441,8 @@ def measure(images, *, pixel_size_nm: float | None = None, groups: dict | None =
             bar.close()
     order = {_name(j[0], j[1]): i for i, j in enumerate(jobs)}
     results.sort(key=lambda r: order.get(r.name, 0))
+    for r in results[REPORT_IMAGES:]:
+        r.preview = None            # only the first images get figures; keeps big batches small
     meas = Measurement(images=results, failures=failures, settings=settings)
     _pool(meas)
     return meas

@@ -139,13 +139,16 @@ th{background:#eef3f7}
 """
 
 
-def write_report(meas, path, *, max_image_sections: int = 12) -> Path:
+def write_report(meas, path, *, max_image_sections: int | None = None) -> Path:
     """Write the HTML report of a Measurement to ``path``."""
     import matplotlib
 
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
 
+    from ._measure import REPORT_IMAGES
+
+    max_image_sections = REPORT_IMAGES if max_image_sections is None else max_image_sections
     esc = html.escape
     s = meas.settings
     parts = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>quietedge roughness report</title>"
