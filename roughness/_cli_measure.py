@@ -87,7 +87,7 @@ def _settings(args):
 def _print_headline(meas, out):
     df = meas.summary_table()
     cols = ["image", "n_lines", "ler_3sigma_biased_nm", "ler_3sigma_unbiased_nm", "lwr_3sigma_unbiased_nm",
-            "noise_fraction", "edge_correlation_length_nm", "status"]
+            "noise_fraction", "edge_correlation_length_nm", "status", "warnings"]
     if len(df):
         short = df[cols].copy()
         short["image"] = [Path(n).name for n in short["image"]]
