@@ -417,17 +417,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
                 var_x = gamma0 * num / res.info ** 2
             else:
                 var_x = gamma0 / res.info
-        ok = _row_ok(res, win)
-        code = np.zeros(res.x0.size, np.int8)
-        code[~res.converged] = REASON_CODES["no_convergence"]
-        inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
-        code[~inside & res.converged] = REASON_CODES["left_window"]
-        med_gain = np.array([nanmedian(res.gain[e_idx == e]) for e in range(idx.size)])
-        rel = res.gain / med_gain[e_idx]
-        code[(code == 0) & ~(rel > 0.3)] = REASON_CODES["low_contrast"]
-        code[win.saturated] = REASON_CODES["saturated"]
-        code[win.non_finite] = REASON_CODES["non_finite"]
-        code[(code == 0) & ~(np.isfinite(var_x) & (var_x > 0))] = REASON_CODES["no_convergence"]
+        code = _reason_codes(res, win, var_x, e_idx, idx.size)
         valid = code == 0
         p = m.pixel_size_nm
         pos[idx] = np.where(valid, res.x0 * p, np.nan).reshape(idx.size, n_rows)
@@ -435,13 +425,8 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         chi2[idx] = (res.rss / np.clip(res.n_used - 3, 1, None)).reshape(idx.size, n_rows)
         iters[idx] = res.iterations.reshape(idx.size, n_rows)
         reason[idx] = code.reshape(idx.size, n_rows)
-        for j, e in enumerate(idx):
-            rows = (e_idx == j) & valid
-            if rows.any():
-                mid = res.offset[rows] + 0.5 * res.gain[rows]
-                cnr[e] = float(np.median(np.abs(res.gain[rows]) / np.sqrt(np.maximum(c0 + c1 * mid, 1e-300))))
-            if not cnr[e] >= LOW_CONTRAST_CNR:
-                flags[e] = "low_contrast"
+        cnr[idx] = _edge_cnr(res, valid, e_idx, idx.size, c0, c1)
+        flags[idx[~(cnr[idx] >= LOW_CONTRAST_CNR)]] = "low_contrast"
         noise_info = {"variance_intercept": c0, "variance_per_signal": c1,
                       "scan_correlation": float(a_scan) if correlated else 0.0,
                       "scan_correlation_measured": float(a_scan),
@@ -455,6 +440,32 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         row_spacing_nm=m.pixel_size_nm, reduced_chi2=chi2, iterations=iters,
         contrast_to_noise=cnr, edge_flags=flags.astype(str), detector=model, source=m.source,
         noise_model=noise_info, rotated=m.rotated)
+
+
+def _reason_codes(res, win, var_x, e_idx, n_edges):
+    """Why each row of the final pass is not valid (0 where it is); never a silent drop."""
+    code = np.zeros(res.x0.size, np.int8)
+    code[~res.converged] = REASON_CODES["no_convergence"]
+    inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
+    code[~inside & res.converged] = REASON_CODES["left_window"]
+    med_gain = np.array([nanmedian(res.gain[e_idx == e]) for e in range(n_edges)])
+    rel = res.gain / med_gain[e_idx]
+    code[(code == 0) & ~(rel > 0.3)] = REASON_CODES["low_contrast"]      # step too small or reversed
+    code[win.saturated] = REASON_CODES["saturated"]
+    code[win.non_finite] = REASON_CODES["non_finite"]
+    code[(code == 0) & ~(np.isfinite(var_x) & (var_x > 0))] = REASON_CODES["no_convergence"]
+    return code
+
+
+def _edge_cnr(res, valid, e_idx, n_edges, c0, c1):
+    """Median over valid rows of step height over the noise sd at mid-step, per edge."""
+    out = np.full(n_edges, np.nan)
+    for e in range(n_edges):
+        rows = (e_idx == e) & valid
+        if rows.any():
+            mid = res.offset[rows] + 0.5 * res.gain[rows]
+            out[e] = float(np.median(np.abs(res.gain[rows]) / np.sqrt(np.maximum(c0 + c1 * mid, 1e-300))))
+    return out
 
 
 def _row_ok(res, win):
