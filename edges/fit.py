@@ -345,7 +345,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         table = tabulate([lambda u, derivative=False: parametric_profile(u, EdgeShape(2.0), derivative=derivative)]
                          * idx.size, 3 * hmax + 6)
         res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, guess.ravel(),
-                         grid_offsets_px=np.arange(-(hmax - 3), hmax - 2), max_iterations=max_iterations,
+                         grid_offsets_px=np.arange(-(hmax - 3), hmax - 2, 2), max_iterations=max_iterations,
                          tolerance_px=1e-2, chunk_rows=chunk_rows)
         inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
         ok = np.isfinite(res.x0) & inside & (np.abs(res.gain) > 0)
