@@ -71,13 +71,13 @@ class PSDModelFit:
                                roughness_exponent=self.roughness_exponent)
 
 
-def _fit_once(f, p, floor, m_eff, start, free_floor=False, extra_starts=True):
+def _fit_once(f, p, floor, start, free_floor=False, extra_starts=True):
     """Whittle fit: minimise sum_k [ln M_k + P_k / M_k] over (ln sigma, ln xi, H[, ln floor]).
 
     The Whittle likelihood is the exact likelihood of independent exponential (or averaged,
     Gamma) periodogram ordinates, so unlike least squares on logarithms it needs no correction
     for the mean of a log and stays unbiased with the few traces of one image (Whittle 1953;
-    METHODS 4.3).  ``m_eff`` does not change the optimum; it is kept for the interface.
+    METHODS 4.3).
     """
     def cost(theta):
         s, xi, h = math.exp(theta[0]), math.exp(theta[1]), theta[2]
@@ -128,8 +128,6 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
     sel = np.arange(n_f) >= skip_bins
     sel[-1] = False                        # the last bin may be Nyquist's (chi-square, 1 dof)
     rng = np.random.default_rng(0) if rng is None else rng
-    # neighbouring Hann bins correlate 0.44: an average of M traces acts like M / 1.9
-    m_eff = max(n_tr / (1.9 if window == "hann" else 1.0), 1.0)
 
     def fit(rows, around=None):
         mean = p[rows].mean(axis=0)
@@ -144,7 +142,7 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
         good = sel & (mean > 0)
         start = [math.log(s0), math.log(xi0), 0.7] if around is None else \
             [math.log(around[0]), math.log(around[1]), around[2]]
-        return _fit_once(f[good], mean[good], floor_, m_eff, start, free_floor=floor == "free",
+        return _fit_once(f[good], mean[good], floor_, start, free_floor=floor == "free",
                          extra_starts=around is None)
 
     theta = fit(np.arange(n_tr))

@@ -18,6 +18,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.stats import t as student_t
 
 from edges._types import EdgeTraces
 
@@ -247,9 +248,10 @@ def summarize(images, *, n_resamples: int = 1000, confidence: float = 0.95,
     rng = np.random.default_rng(0) if rng is None else rng
     units = [im.units for im in images]
     point = _group_values(units)
-    boot = {k: np.empty(n_resamples) for k in point}
     if len(units) == 1:
         boot = _bootstrap_one_image(units[0], n_resamples, rng)
+    else:
+        boot = {k: np.empty(n_resamples) for k in point}
     for b in (range(n_resamples) if len(units) > 1 else ()):
         pick = rng.integers(0, len(units), len(units)) if len(units) > 1 else [0]
         sample = []
@@ -264,11 +266,9 @@ def summarize(images, *, n_resamples: int = 1000, confidence: float = 0.95,
     # under-cover with the 5-20 lines of a typical image (87% for a nominal 95% at 12 lines in
     # our coverage check); the t factor and the n/(n-1) correction for the bootstrap's
     # divide-by-n variance restore it.
-    from scipy import stats as _st
-
     n_units = len(images) if len(images) > 1 else int(np.count_nonzero(
         np.isfinite(images[0].units["left_b"]) | np.isfinite(images[0].units["right_b"])))
-    t = float(_st.t.ppf(0.5 * (1 + confidence), max(n_units - 1, 1)))
+    t = float(student_t.ppf(0.5 * (1 + confidence), max(n_units - 1, 1)))
     scale = t * math.sqrt(n_units / max(n_units - 1, 1))
 
     def interval(arr, centre):
