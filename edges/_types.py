@@ -10,6 +10,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ._noise import NoiseModel
+
 __all__ = ["Micrograph", "EdgeTraces", "REASONS", "REASON_CODES"]
 
 #: Reason codes for invalid rows of an edge (index = code stored in ``EdgeTraces.reason``).
@@ -88,12 +90,19 @@ class EdgeTraces:
     edge_flags : (n_edges,) ndarray of str
         ``""`` or a comma-separated list such as ``"low_contrast"``.
     detector : str
-        ``"template"``, ``"parametric"``, ``"step"``, ``"threshold"`` or ``"slope"``.
+        ``"model"`` (the profile fit), ``"threshold"`` or ``"slope"``.
+    profile_model : str
+        Profile model of the ``"model"`` detector (``"template"``, ``"parametric"``,
+        ``"step"``); ``""`` for the baselines.
     source : str
-    noise_model : dict
-        The image-level noise model used for the weights and uncertainties.
+    noise_model : NoiseModel
+        The image-level noise model used for the weights and uncertainties (NaN fields where a
+        detector does not estimate them).
     rotated : bool
         The image was turned to make its lines vertical (the scan then ran along the lines).
+    profile_shapes : tuple
+        Per edge, the :class:`edges.profiles.EdgeShape` fitted by the model detector (None for
+        edges not fitted and for the baselines).
     """
 
     position_nm: np.ndarray
@@ -107,10 +116,12 @@ class EdgeTraces:
     iterations: np.ndarray
     contrast_to_noise: np.ndarray
     edge_flags: np.ndarray
-    detector: str = "template"
+    detector: str = "model"
+    profile_model: str = ""
     source: str = "<array>"
-    noise_model: dict = field(default_factory=dict)
+    noise_model: NoiseModel = field(default_factory=NoiseModel)
     rotated: bool = False
+    profile_shapes: tuple = ()
 
     @property
     def n_edges(self) -> int:

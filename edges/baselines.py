@@ -19,7 +19,8 @@ import numpy as np
 
 from ._nanstats import nanmean, nanmedian
 from ._types import REASON_CODES, EdgeTraces, Micrograph
-from .fit import EdgeWindows, _centre_lines, _saturation
+from ._noise import NoiseModel
+from ._windows import centre_lines, cut_windows, saturation_level
 from .locate import LineLayout, locate_edges
 
 __all__ = ["threshold_edges", "slope_edges"]
@@ -82,16 +83,16 @@ def _detect(micrograph, *, mode, level, window_px, n_plateau_px, polarity, orien
     if idx.size:
         half = np.array([layout.edges[i].half_window_px for i in idx])
         guess = layout.guess_columns(np.arange(n_rows))[idx]
-        sat = _saturation(m)
-        win = EdgeWindows(m.pixels, guess, half, sat)
+        sat = saturation_level(m)
+        win = cut_windows(m.pixels, guess, half, sat)
         for _ in range(2):   # second round on windows re-centred on the first round's line
             a, b, first, last = _plateaus(win, n_plateau_px)
             lo, hi = np.minimum(a, b), np.maximum(a, b)
             lev = lo + level * (hi - lo)
             centre = np.rint(guess).ravel()
             x, step, found, _ = _crossing(win, lev, centre)
-            guess = _centre_lines(x.reshape(idx.size, n_rows), found.reshape(idx.size, n_rows), guess)
-            win = EdgeWindows(m.pixels, guess, half, sat)
+            guess = centre_lines(x.reshape(idx.size, n_rows), found.reshape(idx.size, n_rows), guess)
+            win = cut_windows(m.pixels, guess, half, sat)
         a, b, first, last = _plateaus(win, n_plateau_px)
         lo, hi = np.minimum(a, b), np.maximum(a, b)
         lev = lo + level * (hi - lo)
@@ -125,8 +126,8 @@ def _detect(micrograph, *, mode, level, window_px, n_plateau_px, polarity, orien
         line_index=np.array([g.line_index for g in layout.edges]),
         side=np.array([g.side for g in layout.edges]), row_spacing_nm=m.pixel_size_nm,
         reduced_chi2=np.full((n_all, n_rows), np.nan), iterations=np.zeros((n_all, n_rows), np.int64),
-        contrast_to_noise=cnr, edge_flags=flags.astype(str), detector=mode, source=m.source,
-        noise_model={"level": level, "n_plateau_px": n_plateau_px}, rotated=m.rotated)
+        contrast_to_noise=cnr, edge_flags=flags.astype(str), detector=mode, profile_model="", source=m.source,
+        noise_model=NoiseModel(), rotated=m.rotated)
 
 
 def _slope_fit(win, lo, hi, x_thr, noise_var, n_b, low=0.2, high=0.8, reach_px=3.0):

@@ -1,25 +1,26 @@
 """Model-based edge positions for every row, with calibrated uncertainties.
 
-Passes over all rows of all edges at once (batched, no loop over rows):
+:func:`fit_edges` runs five named passes over all rows of all edges at once (batched, no loop
+over rows); each returns a small frozen result that the next one reads:
 
-1. **coarse**: a plain blurred step, starting from the located guesses after a grid search
-   over the window; gives rough positions and each edge's straight centre line;
-2. **shape**: one shape per side (left edges, right edges; pooled over the image's lines) from
-   the mean profile aligned on the centre lines, with the roughness blur removed; an unweighted
-   pass with it; then each row's window is re-centred on that row's estimate and the shape is
-   refitted on the self-aligned profile, corrected for the sharpening that self-alignment
-   causes (:func:`edges.profiles.adjust_blur`);
-3. **unweighted** pass with the final shape: its residuals give the image's noise model
-   ``var = c0 + c1 * signal`` (shot noise makes the variance follow the signal) and the noise
-   correlation along the scan;
-4. **weighted** pass, weights ``1 / var(model of pass 3)``; each position's variance is
-   ``1 / (J_p^T W J_p)``, or the sandwich ``q^T C q / (J_p^T W J_p)^2`` (q = W J_p) when the
-   noise is correlated along the scan, C that of a first-order detector filter,
-   C_(i,i+l) = a^l var_i, with a estimated from the residuals by the method of moments (the
-   projection of the fit on the residuals is undone exactly in expectation).
+1. :func:`_coarse_pass`: a plain blurred step, started from the located guesses after a grid
+   search over the window; rough positions, each edge's straight centre line, and the
+   roughness variance about it;
+2. :func:`_shape_pass`: one shape per side (left edges, right edges, pooled over the image's
+   lines) from the mean profile aligned on the centre lines, with the roughness blur removed;
+   an unweighted fit with it;
+3. :func:`_realign_pass`: each row's window re-centred on that row's estimate, the shape
+   refitted on the self-aligned profile (corrected for the sharpening self-alignment causes,
+   :func:`edges.profiles.adjust_blur`) and an unweighted fit with the final shape;
+4. :func:`_noise_pass`: the image's noise model from that fit's residuals
+   (:func:`edges._noise.estimate_noise`: variance against signal, correlation along the scan);
+5. :func:`_weighted_pass`: weights ``1 / var``; each position's variance from the Schur
+   complement, or the sandwich form under scan correlation.
 
-Edges whose median contrast-to-noise falls below :data:`LOW_CONTRAST_CNR` are flagged
-``low_contrast``: there the linearised covariance under-states the real scatter.
+Reported positions are the half-level point of each edge's mean profile
+(:func:`edges.profiles.half_level_offset`).  Edges whose median contrast-to-noise falls below
+:data:`LOW_CONTRAST_CNR` are flagged ``low_contrast``: there the linearised covariance
+under-states the real scatter.
 
 References
 ----------
@@ -30,88 +31,174 @@ method and its applications. Inverse Problems 19, R1.  doi:10.1088/0266-5611/19/
 """
 from __future__ import annotations
 
-import math
+from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 from ._nanstats import nanmean, nanmedian
-from ._solver import solve_rows
+from ._noise import NoiseModel, estimate_noise, position_variance
+from ._solver import RowFit, solve_rows
 from ._types import REASON_CODES, EdgeTraces, Micrograph
+from ._windows import EdgeWindows, centre_lines, cut_windows, fit_reason_codes, rows_usable, saturation_level
 from .locate import LineLayout, locate_edges
-from .profiles import (EdgeShape, adjust_blur, fit_shape, fit_shift, half_level_offset,
-                       parametric_profile,
-                       smoothed_correction, tabulate)
+from .profiles import (PROFILE_MODELS, EdgeShape, ProfileTable, adjust_blur, fit_shape, fit_shift,
+                       half_level_offset, parametric_profile, smoothed_correction, tabulate)
 
-__all__ = ["fit_edges", "LOW_CONTRAST_CNR", "EdgeWindows", "gather_windows"]
+__all__ = ["fit_edges", "LOW_CONTRAST_CNR"]
 
 #: Below this contrast-to-noise (step height over noise sd at mid-step) an edge is flagged.
 LOW_CONTRAST_CNR = 3.0
-_MODELS = ("template", "parametric", "step")
 _BIN_PX = 0.25
 
 
-class EdgeWindows:
-    """Pixel windows of every row of every fitted edge, stacked as (n_edges * n_rows, width)."""
+@dataclass(frozen=True)
+class _Solve:
+    """Solver options shared by the passes."""
 
-    def __init__(self, pixels, centres_px, half_px, saturation_level=None):
-        n_e, n_r = centres_px.shape
-        hmax = int(half_px.max())
-        offs = np.arange(-hmax, hmax + 1)
-        start = np.rint(centres_px).astype(np.int64)
-        col = start[:, :, None] + offs[None, None, :]
-        n_cols = pixels.shape[1]
-        inside = (col >= 0) & (col < n_cols) & (np.abs(offs)[None, None, :] <= half_px[:, None, None])
-        colc = np.clip(col, 0, n_cols - 1)
-        rows = np.broadcast_to(np.arange(n_r)[None, :, None], col.shape)
-        y = pixels[rows, colc].reshape(n_e * n_r, -1)
-        self.y = y
-        self.cols = col.reshape(n_e * n_r, -1).astype(np.float64)
-        self.mask = inside.reshape(n_e * n_r, -1)
-        self.edge = np.repeat(np.arange(n_e), n_r)
-        self.non_finite = np.any(~np.isfinite(y) & self.mask, axis=1)
-        self.y = np.where(np.isfinite(y), y, 0.0)
-        self.mask &= np.isfinite(y)
-        self.saturated = (np.any((y >= saturation_level) & self.mask, axis=1)
-                          if saturation_level is not None else np.zeros(n_e * n_r, bool))
-        self.first = start.reshape(-1) - half_px.repeat(n_r)
-        self.last = start.reshape(-1) + half_px.repeat(n_r)
+    max_iterations: int
+    tolerance_px: float
+    chunk_rows: int
 
 
-def gather_windows(micrograph, centres_px, half_px):
-    """Public helper for baselines: windows around per-row centres."""
-    return EdgeWindows(micrograph.pixels, centres_px, np.asarray(half_px), _saturation(micrograph))
+@dataclass(frozen=True)
+class _Frame:
+    """What every pass needs of the image: pixels, windows' half widths, saturation, sides."""
+
+    pixels: np.ndarray
+    half_px: np.ndarray
+    saturation: float | None
+    sides: np.ndarray          # +1 left edge, -1 right edge
+    n_rows: int
+
+    @property
+    def n_edges(self) -> int:
+        return self.half_px.size
+
+    @property
+    def table_range_px(self) -> int:
+        return 3 * int(self.half_px.max()) + 6
 
 
-def _saturation(m: Micrograph):
-    if m.saturation_level is not None:
-        return m.saturation_level
-    px = m.pixels
-    top = px.max()
-    # a clipped detector leaves many pixels at exactly the maximum
-    return float(top) if np.count_nonzero(px == top) > 0.005 * px.size else None
+@dataclass(frozen=True)
+class CoarsePass:
+    """Plain-step fit: positions, usable rows, centre lines, roughness variance (px, px^2)."""
+
+    fit: RowFit
+    ok: np.ndarray
+    centres_px: np.ndarray
+    roughness_var_px2: np.ndarray
 
 
-def _centre_lines(x, ok, fallback):
-    """Robust straight line through each edge's positions; the fallback where too few rows."""
-    n_e, n_r = x.shape
-    rows = np.arange(n_r, dtype=float)
-    out = fallback.copy()
-    for e in range(n_e):
-        good = ok[e] & np.isfinite(x[e])
-        for _ in range(2):
-            if good.sum() < 8:
-                break
-            coef = np.polyfit(rows[good], x[e, good], 1)
-            res = x[e] - np.polyval(coef, rows)
-            mad = np.median(np.abs(res[good])) + 1e-9
-            good = good & (np.abs(res) < 5 * 1.4826 * mad + 0.5)
-        if good.sum() >= 8:
-            out[e] = np.polyval(np.polyfit(rows[good], x[e, good], 1), rows)
-    return out
+@dataclass(frozen=True)
+class ShapedPass:
+    """An unweighted fit with per-side shapes on its windows."""
+
+    windows: EdgeWindows
+    table: ProfileTable
+    shapes: tuple
+    fit: RowFit
+    ok: np.ndarray
 
 
-def _aligned_profiles(win, res, ok, hmax):
+@dataclass(frozen=True)
+class NoisePass:
+    """The image's noise model and every window pixel's modelled variance."""
+
+    noise: NoiseModel
+    pixel_variance: np.ndarray
+
+
+@dataclass(frozen=True)
+class WeightedPass:
+    """Final weighted fit and each row's position variance (px^2)."""
+
+    fit: RowFit
+    var_px2: np.ndarray
+
+
+def _coarse_pass(frame: _Frame, guess_px, solve: _Solve) -> CoarsePass:
+    hmax = int(frame.half_px.max())
+    win = cut_windows(frame.pixels, guess_px, frame.half_px, frame.saturation)
+    step = [lambda u, derivative=False: parametric_profile(u, EdgeShape(2.0), derivative=derivative)]
+    table = tabulate(step * frame.n_edges, frame.table_range_px)
+    fit = solve_rows(win.y, win.cols, win.mask.astype(float), table, win.edge, guess_px.ravel(),
+                     grid_offsets_px=np.arange(-(hmax - 3), hmax - 2, 2), max_iterations=solve.max_iterations,
+                     tolerance_px=1e-2, chunk_rows=solve.chunk_rows)
+    ok = np.isfinite(fit.x0) & win.inside(fit.x0) & (np.abs(fit.gain) > 0)
+    shape2 = (frame.n_edges, frame.n_rows)
+    centres = centre_lines(fit.x0.reshape(shape2), ok.reshape(shape2), guess_px)
+    # roughness variance about the centre line: scatter of the coarse positions less their own
+    # noise (their unweighted variance s^2 / info); it is removed from the profile's blur
+    s2 = fit.rss / np.clip(fit.n_used - 3, 1, None)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dev = np.where(ok, fit.x0 - centres.ravel(), np.nan).reshape(shape2)
+        noise = nanmedian(np.where(ok, s2 / fit.info, np.nan).reshape(shape2), axis=1)
+    rough_var = np.clip(nanmean(dev ** 2, axis=1) - noise, 0.0, None)
+    return CoarsePass(fit=fit, ok=ok, centres_px=centres, roughness_var_px2=rough_var)
+
+
+def _shape_pass(frame: _Frame, coarse: CoarsePass, model: str, solve: _Solve) -> ShapedPass:
+    """Shapes from the profile aligned on the smooth centre lines: blurred by the roughness (that
+    blur is removed), but free of the distortion that self-alignment on a wrong (plain-step)
+    model leaves, which can favour a step hidden under a bright rim."""
+    hmax = int(frame.half_px.max())
+    win = cut_windows(frame.pixels, coarse.centres_px, frame.half_px, frame.saturation)
+    centres = coarse.centres_px.ravel()
+    ub, mean = _aligned_profiles(win, centres, coarse.fit.offset, coarse.fit.gain, coarse.ok, hmax)
+    funcs, shapes, shift = _shapes(ub, mean, model, frame.sides,
+                                   blur_change_px2=-np.nan_to_num(coarse.roughness_var_px2))
+    table = tabulate(funcs, frame.table_range_px)
+    x_start = np.where(coarse.ok, coarse.fit.x0, centres) + shift[win.edge]
+    fit = solve_rows(win.y, win.cols, win.mask.astype(float), table, win.edge, x_start,
+                     max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px, chunk_rows=solve.chunk_rows)
+    return ShapedPass(windows=win, table=table, shapes=tuple(shapes), fit=fit, ok=rows_usable(fit, win))
+
+
+def _realign_pass(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, model: str, solve: _Solve) -> ShapedPass:
+    """Windows centred on each row's own estimate (a window that stays on the centre line
+    truncates the edge on one side when the edge wanders, and at low contrast-to-noise the fit
+    then drifts toward the window centre: shrinkage); shape refitted on the self-aligned
+    profile with the alignment scatter removed; unweighted fit with it."""
+    hmax = int(frame.half_px.max())
+    fit, ok, e_idx = shaped.fit, shaped.ok, shaped.windows.edge
+    centres = coarse.centres_px.ravel()
+    s2 = fit.rss / np.clip(fit.n_used - 3, 1, None)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        align_var = np.array([nanmean(np.where(ok, s2 / fit.info, np.nan)[e_idx == e])
+                              for e in range(frame.n_edges)])
+    own = np.where(ok, fit.x0, centres).reshape(frame.n_edges, frame.n_rows)
+    win = cut_windows(frame.pixels, own, frame.half_px, frame.saturation)
+    offset = np.where(ok, fit.offset, np.nan)
+    ok = ok & np.isfinite(fit.x0)
+    ub, mean = _aligned_profiles(win, fit.x0, offset, fit.gain, ok, hmax)
+    funcs, shapes, shift = _shapes(ub, mean, model, frame.sides, starts=shaped.shapes,
+                                   blur_change_px2=np.nan_to_num(align_var))
+    table = tabulate(funcs, frame.table_range_px)
+    x_start = np.where(ok, fit.x0, centres) + shift[e_idx]
+    refit = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
+                       max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px, chunk_rows=solve.chunk_rows)
+    return ShapedPass(windows=win, table=table, shapes=tuple(shapes), fit=refit, ok=rows_usable(refit, win))
+
+
+def _noise_pass(shaped: ShapedPass, noise_correlation: str) -> NoisePass:
+    noise, var = estimate_noise(shaped.windows, shaped.fit, shaped.ok, shaped.table,
+                                scan_correlation=noise_correlation == "auto")
+    return NoisePass(noise=noise, pixel_variance=var)
+
+
+def _weighted_pass(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, noise: NoisePass,
+                   solve: _Solve) -> WeightedPass:
+    win = shaped.windows
+    n_lags = 2 * int(frame.half_px.max()) if noise.noise.correlated else 0
+    x_start = np.where(shaped.ok, shaped.fit.x0, coarse.centres_px.ravel())
+    fit = solve_rows(win.y, win.cols, win.mask / noise.pixel_variance, shaped.table, win.edge, x_start,
+                     max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px,
+                     chunk_rows=solve.chunk_rows, n_lags=n_lags,
+                     lag_variance=noise.pixel_variance if n_lags else None)
+    return WeightedPass(fit=fit, var_px2=position_variance(fit, noise.noise, n_lags))
+
+
+def _aligned_profiles(win, x0, offset, gain, ok, hmax):
     """Per-edge mean of (y - offset) / gain against u = col - x0 in bins of _BIN_PX."""
     n_e = int(win.edge.max()) + 1
     edges_u = np.arange(-(hmax + 1), hmax + 1 + 1e-9, _BIN_PX)
@@ -119,8 +206,8 @@ def _aligned_profiles(win, res, ok, hmax):
     nb = centres.size
     use = ok[:, None] & win.mask
     with np.errstate(divide="ignore", invalid="ignore"):
-        z = (win.y - res.offset[:, None]) / res.gain[:, None]
-    u = win.cols - res.x0[:, None]
+        z = (win.y - offset[:, None]) / gain[:, None]
+    u = win.cols - x0[:, None]
     k = np.floor((u + hmax + 1) / _BIN_PX).astype(np.int64)
     use &= (k >= 0) & (k < nb) & np.isfinite(z)
     flat = (win.edge[:, None] * nb + k)[use]
@@ -189,133 +276,61 @@ def _safe_shift(centres, z, profile):
         return 0.0
 
 
-def _noise_model(win, res, ok, table, scan_filter=0.0):
-    """var(signal) = c0 + c1 * signal from unweighted residuals, pooled over the image.
-
-    Each squared residual is divided by (1 - h_ii), h the row's hat matrix for (x0, offset,
-    gain), so that pixels of high leverage (on the edge) are not under-counted.  With a
-    first-order detector filter of coefficient a along the scan (left to right), a pixel's
-    noise variance follows the *filtered* signal (1 - a^2) sum_k a^(2k) m_(n-k), which is what
-    is regressed on then (shot noise from a bright side spills into the dark side).
-    Returns c0, c1 and the signal that the variance is a function of, per pixel.
-    """
-    mu, dmu = table.evaluate(win.edge, win.cols - res.x0[:, None])
-    model = res.offset[:, None] + res.gain[:, None] * mu
-    X = np.stack([-res.gain[:, None] * dmu, np.ones_like(mu), mu], axis=2) * win.mask[:, :, None]
-    G = np.swapaxes(X, 1, 2) @ X
-    good_rows = ok & (np.abs(np.linalg.det(G)) > 0)
-    Ginv = np.zeros_like(G)
-    Ginv[good_rows] = np.linalg.inv(G[good_rows])
-    lev = np.einsum("nia,nab,nib->ni", X, Ginv, X)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r2 = (win.y - model) ** 2 / (1.0 - lev)
-    ok = good_rows
-    if scan_filter > 0:
-        a2 = scan_filter ** 2
-        model, _ = signal.lfilter([1 - a2], [1.0, -a2], model, axis=1, zi=a2 * model[:, :1])
-    use = ok[:, None] & win.mask & (lev < 0.95)
-    m, v = model[use], r2[use]
-    if m.size < 50:
-        return 0.0, 1.0, model
-    q = np.quantile(m, np.linspace(0, 1, 21))
-    k = np.clip(np.searchsorted(q, m, side="right") - 1, 0, 19)
-    cnt = np.bincount(k, minlength=20)
-    good = cnt > 10
-    mb = np.bincount(k, weights=m, minlength=20)[good] / cnt[good]
-    vb = np.bincount(k, weights=v, minlength=20)[good] / cnt[good]
-    wts = cnt[good] / np.maximum(vb, 1e-300) ** 2
-    if good.sum() >= 3 and np.ptp(mb) > 0:
-        c1, c0 = np.polyfit(mb, vb, 1, w=np.sqrt(wts))
-    else:
-        c0, c1 = float(np.mean(v)), 0.0
-    floor = 0.05 * float(np.median(v))
-    if c0 + c1 * m.min() < floor or c0 + c1 * m.max() < floor:
-        c0, c1 = float(np.mean(v)), 0.0
-    return float(c0), float(c1), model
-
-
-def _scan_correlation(win, res, ok, var, table, rng_seed=0):
-    """Noise correlation along the scan, R_ij = gamma0 * a^|i-j| (first-order detector filter).
-
-    Normalised residuals e = D^(-1/2) r of the unweighted fit have E[e e^T] = M R M^T with
-    M = D^(-1/2) (I - H) D^(1/2) and H the rows' hat matrices, so the lag sums
-    c_k = sum_n e_n e_(n+k) have expectations tr(B_k R), B_k = sum_rows M^T S_k M.  (gamma0, a)
-    are fitted to c_0..c_K by least squares.  A non-parametric R is not identifiable here: the
-    fit removes the offset, so a constant added to every lag leaves the residuals unchanged.
-    Returns gamma0 (variance scale of the noise model), a, and its standard error.
-    """
-    width = win.y.shape[1]
-    full = np.flatnonzero(ok & (win.mask.sum(1) == width))
-    if full.size < 200:
-        return 1.0, 0.0, np.inf
-    sample = full if full.size <= 1500 else np.random.default_rng(rng_seed).choice(full, 1500, replace=False)
-    sample.sort()
-    mu, dmu = table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
-    X = np.stack([-res.gain[sample, None] * dmu, np.ones_like(mu), mu], axis=2)
-    Xt = np.swapaxes(X, 1, 2)
-    H = X @ np.linalg.solve(Xt @ X, Xt)
-    d = np.sqrt(var[sample])
-    M = (np.eye(width)[None] - H) * d[:, None, :] / d[:, :, None]
-    e = (win.y[sample] - res.offset[sample, None] - res.gain[sample, None] * mu) / d
-    n_k = min(10, width - 4)
-    c_hat = np.array([np.sum(e[:, :width - k] * e[:, k:]) for k in range(n_k + 1)])
-    B = [M[:, :width - k, :].reshape(-1, width).T @ M[:, k:, :].reshape(-1, width) for k in range(n_k + 1)]
-    lag = np.abs(np.subtract.outer(np.arange(width), np.arange(width)))
-
-    def expected(a):
-        R = a ** lag
-        return np.array([np.sum(Bk * R.T) for Bk in B])
-
-    def misfit(a):
-        ex = expected(a)
-        g0 = ex @ c_hat / (ex @ ex)
-        return np.sum((c_hat - g0 * ex) ** 2), g0
-
-    grid = np.linspace(-0.3, 0.95, 26)
-    a0 = grid[int(np.argmin([misfit(a)[0] for a in grid]))]
-    from scipy.optimize import minimize_scalar
-
-    opt = minimize_scalar(lambda a: misfit(a)[0], bounds=(max(-0.35, a0 - 0.06), min(0.97, a0 + 0.06)),
-                          method="bounded")
-    a = float(opt.x)
-    gamma0 = float(misfit(a)[1])
-    # lag-1 correlation of n independent normalised pairs has sd ~ 1/sqrt(n)
-    se = 1.0 / math.sqrt(sample.size * (width - 3))
-    return gamma0, a, se
-
-
 def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int = 31,
               polarity: str = "auto", orientation: str = "auto", noise_correlation: str = "auto",
               max_iterations: int = 30, tolerance_px: float = 1e-4, chunk_rows: int = 4096,
               layout: LineLayout | None = None) -> EdgeTraces:
-    """Fit every row of every edge of a micrograph.
+    """Fit an edge-profile model to every row of every edge of a micrograph.
 
     Parameters
     ----------
     micrograph : Micrograph
+        Image with ``pixels`` of shape (n_rows, n_cols) and ``pixel_size_nm``.
     model : {"template", "parametric", "step"}
-        Edge-profile model (see :mod:`edges.profiles`); positions refer to the step centre.
+        Edge-profile model (see :mod:`edges.profiles`).  Positions refer to the half-level
+        point of each edge's mean profile.
     window_px : int
         Odd window width in pixels, centred on each edge (narrowed where neighbours are close).
     polarity, orientation : str
-        Passed to :func:`edges.locate.locate_edges`.
+        Passed to :func:`edges.locate_edges`.
     noise_correlation : {"auto", "none"}
         ``"auto"`` estimates noise correlation along the scan and uses a sandwich covariance
         when it is present; ``"none"`` assumes independent pixels.
-    max_iterations, tolerance_px : int, float
-        Levenberg-Marquardt cap and step tolerance (px).
+    max_iterations : int
+        Levenberg-Marquardt iteration cap per row.
+    tolerance_px : float
+        Step size (px) below which a row has converged.
     chunk_rows : int
         Rows solved together (memory stays near chunk_rows x window).
     layout : LineLayout, optional
-        A location already made (skips :func:`locate_edges`).
+        A location already made (skips :func:`edges.locate_edges`).
 
     Returns
     -------
     EdgeTraces
-        Positions and 1-sigma uncertainties in nm; rows that failed are NaN with a reason.
+        Positions and 1-sigma uncertainties in nm, shape (n_edges, n_rows); rows that failed
+        are NaN with a reason code.
+
+    References
+    ----------
+    Golub, G. & Pereyra, V. (2003). Separable nonlinear least squares: the variable projection
+    method and its applications. Inverse Problems 19, R1.  doi:10.1088/0266-5611/19/2/201
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from edges import Micrograph, SEMSettings, fit_edges, render_micrograph
+    >>> left = np.array([[40.0] * 64, [104.0] * 64])
+    >>> pixels, _ = render_micrograph(left, left + 32, n_cols=176, rng=np.random.default_rng(1),
+    ...                               settings=SEMSettings(dose_per_pixel=200))
+    >>> traces = fit_edges(Micrograph(pixels=pixels, pixel_size_nm=1.0))
+    >>> traces.position_nm.shape
+    (4, 64)
+    >>> np.round(np.nanmean(traces.position_nm, axis=1)).tolist()
+    [40.0, 72.0, 104.0, 136.0]
     """
-    if model not in _MODELS:
-        raise ValueError(f"model={model!r}: must be one of {_MODELS}")
+    if model not in PROFILE_MODELS:
+        raise ValueError(f"model={model!r}: must be one of {PROFILE_MODELS}")
     if noise_correlation not in ("auto", "none"):
         raise ValueError(f"noise_correlation={noise_correlation!r}: must be 'auto' or 'none'")
     if layout is None:
@@ -333,142 +348,46 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
     iters = np.zeros((n_all, n_rows), np.int64)
     cnr = np.full(n_all, np.nan)
     flags = np.array(["too_close" if not f else "" for f in fitted], dtype=object)
-    noise_info = {}
+    noise = NoiseModel()
+    shapes_all = [None] * n_all
     if idx.size:
-        half = np.array([layout.edges[i].half_window_px for i in idx])
-        hmax = int(half.max())
-        guess = layout.guess_columns(np.arange(n_rows))[idx]
-        e_idx = np.repeat(np.arange(idx.size), n_rows)
-        sat = _saturation(m)
-        # 1. coarse pass with a plain step
-        win = EdgeWindows(m.pixels, guess, half, sat)
-        table = tabulate([lambda u, derivative=False: parametric_profile(u, EdgeShape(2.0), derivative=derivative)]
-                         * idx.size, 3 * hmax + 6)
-        res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, guess.ravel(),
-                         grid_offsets_px=np.arange(-(hmax - 3), hmax - 2, 2), max_iterations=max_iterations,
-                         tolerance_px=1e-2, chunk_rows=chunk_rows)
-        inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
-        ok = np.isfinite(res.x0) & inside & (np.abs(res.gain) > 0)
-        centres = _centre_lines(res.x0.reshape(idx.size, n_rows), ok.reshape(idx.size, n_rows), guess)
-        win = EdgeWindows(m.pixels, centres, half, sat)
-        # 2. shape from the mean profile aligned on the smooth centre lines: blurred by the
-        #    roughness, but free of the distortion that self-alignment on a wrong (plain-step)
-        #    model leaves, which can favour a step hidden under a bright rim
-        x_coarse = res.x0.copy()
-        # roughness variance about the centre line: scatter of the coarse positions less their
-        # own noise (their unweighted variance s^2 / info), removed from the profile's blur
-        s2 = res.rss / np.clip(res.n_used - 3, 1, None)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            dev = np.where(ok, res.x0 - centres.ravel(), np.nan).reshape(idx.size, n_rows)
-            noise_a = nanmedian(np.where(ok, s2 / res.info, np.nan).reshape(idx.size, n_rows), axis=1)
-        rough_var = np.clip(nanmean(dev ** 2, axis=1) - noise_a, 0.0, None)
-        res.x0 = centres.ravel().copy()
-        ub, mean = _aligned_profiles(win, res, ok, hmax)
-        groups = np.array([1 if layout.edges[i].side == "left" else -1 for i in idx])
-        funcs, shapes, shift = _shapes(ub, mean, model, groups, blur_change_px2=-np.nan_to_num(rough_var))
-        table = tabulate(funcs, 3 * hmax + 6)
-        # 3. unweighted pass; shape again with the alignment scatter removed; unweighted pass
-        #    with that shape, whose residuals give the noise model and the scan correlation
-        x_start = np.where(ok, x_coarse, centres.ravel()) + shift[e_idx]
-        res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
-                         max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
-        ok = _row_ok(res, win)
-        s2 = res.rss / np.clip(res.n_used - 3, 1, None)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            align_var = np.array([nanmean(np.where(ok, s2 / res.info, np.nan)[e_idx == e])
-                                  for e in range(idx.size)])
-        # from here on each row's window is centred on that row's own estimate: a window that
-        # stays on the centre line truncates the edge on one side when the edge wanders, and at
-        # low contrast-to-noise the fit then drifts toward the window centre (shrinkage)
-        own = np.where(ok, res.x0, centres.ravel()).reshape(idx.size, n_rows)
-        win = EdgeWindows(m.pixels, own, half, sat)
-        res.offset = np.where(ok, res.offset, np.nan)
-        ok = ok & np.isfinite(res.x0)
-        ub, mean = _aligned_profiles(win, res, ok, hmax)
-        funcs, shapes, shift2 = _shapes(ub, mean, model, groups, starts=shapes,
-                                        blur_change_px2=np.nan_to_num(align_var))
-        table = tabulate(funcs, 3 * hmax + 6)
-        x_start = np.where(ok, res.x0, centres.ravel()) + shift2[e_idx]
-        res = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
-                         max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
-        ok = _row_ok(res, win)
-        c0, c1, model_c = _noise_model(win, res, ok, table)
-        var = np.maximum(c0 + c1 * model_c, 1e-12)
-        gamma0, a_scan, a_se = 1.0, 0.0, np.inf
-        if noise_correlation == "auto":
-            gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var, table)
-            if a_scan > 4 * a_se:     # refit the variance on the filtered signal, then R again
-                c0, c1, model_c = _noise_model(win, res, ok, table, scan_filter=a_scan)
-                var = np.maximum(c0 + c1 * model_c, 1e-12)
-                gamma0, a_scan, a_se = _scan_correlation(win, res, ok, var, table)
-        correlated = abs(a_scan) > 4 * a_se
-        n_lags = 2 * hmax if correlated else 0
-        # 4. weighted pass
-        weight = win.mask / var
-        x_start = np.where(ok, res.x0, centres.ravel())
-        res = solve_rows(win.y, win.cols, weight, table, e_idx, x_start, max_iterations=max_iterations,
-                         tolerance_px=tolerance_px, chunk_rows=chunk_rows, n_lags=n_lags,
-                         lag_variance=var if correlated else None)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            if correlated:
-                # sandwich for a causal first-order filter: Cov(e_i, e_(i+l)) = a^l var_i
-                ls = res.lag_sums
-                num = ls[:, 0] + 2 * (ls[:, 1:] * a_scan ** np.arange(1, n_lags + 1)).sum(1)
-                var_x = gamma0 * num / res.info ** 2
-            else:
-                var_x = gamma0 / res.info
-        code = _reason_codes(res, win, var_x, e_idx, idx.size)
+        frame = _Frame(pixels=m.pixels, half_px=np.array([layout.edges[i].half_window_px for i in idx]),
+                       saturation=saturation_level(m), n_rows=n_rows,
+                       sides=np.array([1 if layout.edges[i].side == "left" else -1 for i in idx]))
+        solve = _Solve(max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
+        coarse = _coarse_pass(frame, layout.guess_columns(np.arange(n_rows))[idx], solve)
+        shaped = _realign_pass(frame, coarse, _shape_pass(frame, coarse, model, solve), model, solve)
+        noise_pass = _noise_pass(shaped, noise_correlation)
+        final = _weighted_pass(frame, coarse, shaped, noise_pass, solve)
+        noise, res, win = noise_pass.noise, final.fit, shaped.windows
+        code = fit_reason_codes(res, win, final.var_px2, idx.size)
         valid = code == 0
         p = m.pixel_size_nm
         pos[idx] = np.where(valid, res.x0 * p, np.nan).reshape(idx.size, n_rows)
-        sig[idx] = np.where(valid, np.sqrt(np.abs(var_x)) * p, np.nan).reshape(idx.size, n_rows)
+        sig[idx] = np.where(valid, np.sqrt(np.abs(final.var_px2)) * p, np.nan).reshape(idx.size, n_rows)
         chi2[idx] = (res.rss / np.clip(res.n_used - 3, 1, None)).reshape(idx.size, n_rows)
         iters[idx] = res.iterations.reshape(idx.size, n_rows)
         reason[idx] = code.reshape(idx.size, n_rows)
-        cnr[idx] = _edge_cnr(res, valid, e_idx, idx.size, c0, c1)
+        cnr[idx] = _edge_cnr(res, valid, win.edge, idx.size, noise)
         flags[idx[~(cnr[idx] >= LOW_CONTRAST_CNR)]] = "low_contrast"
-        noise_info = {"variance_intercept": c0, "variance_per_signal": c1,
-                      "scan_correlation": float(a_scan) if correlated else 0.0,
-                      "scan_correlation_measured": float(a_scan),
-                      "variance_scale": float(gamma0),
-                      "shapes_px": [vars(s) for s in shapes]}
-    valid_all = reason == 0
+        for k, i in enumerate(idx):
+            shapes_all[i] = shaped.shapes[k]
     return EdgeTraces(
-        position_nm=pos, sigma_nm=sig, valid=valid_all, reason=reason,
+        position_nm=pos, sigma_nm=sig, valid=reason == 0, reason=reason,
         line_index=np.array([g.line_index for g in layout.edges]),
         side=np.array([g.side for g in layout.edges]),
         row_spacing_nm=m.pixel_size_nm, reduced_chi2=chi2, iterations=iters,
-        contrast_to_noise=cnr, edge_flags=flags.astype(str), detector=model, source=m.source,
-        noise_model=noise_info, rotated=m.rotated)
+        contrast_to_noise=cnr, edge_flags=flags.astype(str), detector="model", profile_model=model,
+        source=m.source, noise_model=noise, rotated=m.rotated, profile_shapes=tuple(shapes_all))
 
 
-def _reason_codes(res, win, var_x, e_idx, n_edges):
-    """Why each row of the final pass is not valid (0 where it is); never a silent drop."""
-    code = np.zeros(res.x0.size, np.int8)
-    code[~res.converged] = REASON_CODES["no_convergence"]
-    inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
-    code[~inside & res.converged] = REASON_CODES["left_window"]
-    med_gain = np.array([nanmedian(res.gain[e_idx == e]) for e in range(n_edges)])
-    rel = res.gain / med_gain[e_idx]
-    code[(code == 0) & ~(rel > 0.3)] = REASON_CODES["low_contrast"]      # step too small or reversed
-    code[win.saturated] = REASON_CODES["saturated"]
-    code[win.non_finite] = REASON_CODES["non_finite"]
-    code[(code == 0) & ~(np.isfinite(var_x) & (var_x > 0))] = REASON_CODES["no_convergence"]
-    return code
-
-
-def _edge_cnr(res, valid, e_idx, n_edges, c0, c1):
+def _edge_cnr(res, valid, e_idx, n_edges, noise: NoiseModel):
     """Median over valid rows of step height over the noise sd at mid-step, per edge."""
     out = np.full(n_edges, np.nan)
     for e in range(n_edges):
         rows = (e_idx == e) & valid
         if rows.any():
             mid = res.offset[rows] + 0.5 * res.gain[rows]
-            out[e] = float(np.median(np.abs(res.gain[rows]) / np.sqrt(np.maximum(c0 + c1 * mid, 1e-300))))
+            var = noise.variance_intercept + noise.variance_per_signal * mid
+            out[e] = float(np.median(np.abs(res.gain[rows]) / np.sqrt(np.maximum(var, 1e-300))))
     return out
-
-
-def _row_ok(res, win):
-    inside = (res.x0 > win.first + 1) & (res.x0 < win.last - 1)
-    return (res.converged & inside & np.isfinite(res.x0) & (res.n_used > 5)
-            & ~win.saturated & ~win.non_finite)

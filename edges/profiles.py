@@ -31,8 +31,12 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, optimize, special
 
-__all__ = ["EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "fit_shift", "tabulate",
+__all__ = ["PROFILE_MODELS", "EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "fit_shift", "tabulate",
            "adjust_blur", "half_level_offset"]
+
+#: Profile models of the fit: the image's own mean profile (``template``), the parametric
+#: blurred step with rim (``parametric``), and a plain blurred step (``step``).
+PROFILE_MODELS = ("template", "parametric", "step")
 
 _SQRT2PI = math.sqrt(2 * math.pi)
 GRID_STEP_PX = 1.0 / 32.0

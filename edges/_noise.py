@@ -1,0 +1,205 @@
+"""The image's noise model: pixel variance against signal, correlation along the scan, and the
+variance of each fitted position (plain or sandwich).
+
+Shot noise makes a pixel's variance follow its signal, ``var = c0 + c1 * signal``; the SEM's
+detector chain filters the noise along the scan, modelled as a causal first-order filter of
+coefficient ``a`` (``Cov(e_i, e_(i+l)) = a^l var_i``).  Both are estimated from the residuals
+of an unweighted fit of every row; the weighted fit then uses ``1 / var`` as weights and, where
+the scan correlation is significant, the sandwich variance
+``q^T C q / (J_p^T W J_p)^2`` (q = W J_p) of its position.
+
+References
+----------
+Kay, S. M. (1993). Fundamentals of Statistical Signal Processing, Vol. I: Estimation Theory.
+Prentice Hall (weighted least squares, Fisher information).
+White, H. (1980). A heteroskedasticity-consistent covariance matrix estimator and a direct test
+for heteroskedasticity. Econometrica 48, 817-838.  doi:10.2307/1912934 (the sandwich form).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import signal
+from scipy.optimize import minimize_scalar
+
+__all__ = ["NoiseModel", "estimate_noise", "position_variance"]
+
+
+@dataclass(frozen=True)
+class NoiseModel:
+    """Noise model of one image, as used for the weights and the position uncertainties.
+
+    Attributes
+    ----------
+    variance_intercept : float
+        ``c0`` of ``var = c0 + c1 * signal`` (grey levels squared); NaN when not estimated.
+    variance_per_signal : float
+        ``c1`` (grey levels): shot noise makes the variance grow with the signal.
+    scan_correlation : float
+        Coefficient ``a`` of the first-order filter along the scan used in the sandwich
+        variance; 0 when the measured value is not significant (below 4 standard errors).
+    scan_correlation_measured : float
+        The estimate of ``a`` before that test.
+    variance_scale : float
+        Factor on the modelled variance found by the correlation fit (1 when none).
+    """
+
+    variance_intercept: float = math.nan
+    variance_per_signal: float = math.nan
+    scan_correlation: float = 0.0
+    scan_correlation_measured: float = math.nan
+    variance_scale: float = 1.0
+
+    @property
+    def correlated(self) -> bool:
+        """Whether the sandwich (scan-correlated) variance is used."""
+        return self.scan_correlation != 0.0
+
+    def variance(self, signal_):
+        """Pixel noise variance at the given signal (grey levels squared), floored at 1e-12."""
+        return np.maximum(self.variance_intercept + self.variance_per_signal * signal_, 1e-12)
+
+
+def estimate_noise(win, fit, ok, table, *, scan_correlation: bool = True):
+    """Noise model from the residuals of an unweighted fit of every row.
+
+    Parameters
+    ----------
+    win : EdgeWindows
+    fit : RowFit
+        Unweighted solver result on ``win``.
+    ok : (n,) ndarray of bool
+        Rows usable for the estimate.
+    table : ProfileTable
+    scan_correlation : bool
+        Estimate the correlation along the scan (otherwise independent pixels).
+
+    Returns
+    -------
+    noise : NoiseModel
+    pixel_variance : (n, width) ndarray
+        Modelled variance of every window pixel (for the weights).
+    """
+    c0, c1, signal_ = _variance_law(win, fit, ok, table)
+    var = np.maximum(c0 + c1 * signal_, 1e-12)
+    gamma0, a_scan, a_se = 1.0, 0.0, np.inf
+    if scan_correlation:
+        gamma0, a_scan, a_se = _scan_correlation(win, fit, ok, var, table)
+        if a_scan > 4 * a_se:     # refit the variance on the filtered signal, then the correlation again
+            c0, c1, signal_ = _variance_law(win, fit, ok, table, scan_filter=a_scan)
+            var = np.maximum(c0 + c1 * signal_, 1e-12)
+            gamma0, a_scan, a_se = _scan_correlation(win, fit, ok, var, table)
+    correlated = abs(a_scan) > 4 * a_se
+    noise = NoiseModel(variance_intercept=c0, variance_per_signal=c1,
+                       scan_correlation=float(a_scan) if correlated else 0.0,
+                       scan_correlation_measured=float(a_scan), variance_scale=float(gamma0))
+    return noise, var
+
+
+def position_variance(fit, noise: NoiseModel, n_lags: int):
+    """Variance (px^2) of each row's position from a weighted fit with weights ``1 / var``.
+
+    ``variance_scale / info`` for independent pixels; with scan correlation ``a`` the sandwich
+    ``variance_scale * (S_0 + 2 sum_l a^l S_l) / info^2``, ``S_l`` the solver's lag sums.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if noise.correlated:
+            ls = fit.lag_sums
+            num = ls[:, 0] + 2 * (ls[:, 1:] * noise.scan_correlation ** np.arange(1, n_lags + 1)).sum(1)
+            return noise.variance_scale * num / fit.info ** 2
+        return noise.variance_scale / fit.info
+
+
+def _variance_law(win, res, ok, table, scan_filter=0.0):
+    """var(signal) = c0 + c1 * signal from unweighted residuals, pooled over the image.
+
+    Each squared residual is divided by (1 - h_ii), h the row's hat matrix for (x0, offset,
+    gain), so that pixels of high leverage (on the edge) are not under-counted.  With a
+    first-order detector filter of coefficient a along the scan (left to right), a pixel's
+    noise variance follows the *filtered* signal (1 - a^2) sum_k a^(2k) m_(n-k), which is what
+    is regressed on then (shot noise from a bright side spills into the dark side).
+    Returns c0, c1 and the signal that the variance is a function of, per pixel.
+    """
+    mu, dmu = table.evaluate(win.edge, win.cols - res.x0[:, None])
+    model = res.offset[:, None] + res.gain[:, None] * mu
+    X = np.stack([-res.gain[:, None] * dmu, np.ones_like(mu), mu], axis=2) * win.mask[:, :, None]
+    G = np.swapaxes(X, 1, 2) @ X
+    good_rows = ok & (np.abs(np.linalg.det(G)) > 0)
+    Ginv = np.zeros_like(G)
+    Ginv[good_rows] = np.linalg.inv(G[good_rows])
+    lev = np.einsum("nia,nab,nib->ni", X, Ginv, X)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r2 = (win.y - model) ** 2 / (1.0 - lev)
+    ok = good_rows
+    if scan_filter > 0:
+        a2 = scan_filter ** 2
+        model, _ = signal.lfilter([1 - a2], [1.0, -a2], model, axis=1, zi=a2 * model[:, :1])
+    use = ok[:, None] & win.mask & (lev < 0.95)
+    m, v = model[use], r2[use]
+    if m.size < 50:
+        return 0.0, 1.0, model
+    q = np.quantile(m, np.linspace(0, 1, 21))
+    k = np.clip(np.searchsorted(q, m, side="right") - 1, 0, 19)
+    cnt = np.bincount(k, minlength=20)
+    good = cnt > 10
+    mb = np.bincount(k, weights=m, minlength=20)[good] / cnt[good]
+    vb = np.bincount(k, weights=v, minlength=20)[good] / cnt[good]
+    wts = cnt[good] / np.maximum(vb, 1e-300) ** 2
+    if good.sum() >= 3 and np.ptp(mb) > 0:
+        c1, c0 = np.polyfit(mb, vb, 1, w=np.sqrt(wts))
+    else:
+        c0, c1 = float(np.mean(v)), 0.0
+    floor = 0.05 * float(np.median(v))
+    if c0 + c1 * m.min() < floor or c0 + c1 * m.max() < floor:
+        c0, c1 = float(np.mean(v)), 0.0
+    return float(c0), float(c1), model
+
+
+def _scan_correlation(win, res, ok, var, table, rng_seed=0):
+    """Noise correlation along the scan, R_ij = gamma0 * a^|i-j| (first-order detector filter).
+
+    Normalised residuals e = D^(-1/2) r of the unweighted fit have E[e e^T] = M R M^T with
+    M = D^(-1/2) (I - H) D^(1/2) and H the rows' hat matrices, so the lag sums
+    c_k = sum_n e_n e_(n+k) have expectations tr(B_k R), B_k = sum_rows M^T S_k M.  (gamma0, a)
+    are fitted to c_0..c_K by least squares.  A non-parametric R is not identifiable here: the
+    fit removes the offset, so a constant added to every lag leaves the residuals unchanged.
+    Returns gamma0 (variance scale of the noise model), a, and its standard error.
+    """
+    width = win.y.shape[1]
+    full = np.flatnonzero(ok & (win.mask.sum(1) == width))
+    if full.size < 200:
+        return 1.0, 0.0, np.inf
+    sample = full if full.size <= 1500 else np.random.default_rng(rng_seed).choice(full, 1500, replace=False)
+    sample.sort()
+    mu, dmu = table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
+    X = np.stack([-res.gain[sample, None] * dmu, np.ones_like(mu), mu], axis=2)
+    Xt = np.swapaxes(X, 1, 2)
+    H = X @ np.linalg.solve(Xt @ X, Xt)
+    d = np.sqrt(var[sample])
+    M = (np.eye(width)[None] - H) * d[:, None, :] / d[:, :, None]
+    e = (win.y[sample] - res.offset[sample, None] - res.gain[sample, None] * mu) / d
+    n_k = min(10, width - 4)
+    c_hat = np.array([np.sum(e[:, :width - k] * e[:, k:]) for k in range(n_k + 1)])
+    B = [M[:, :width - k, :].reshape(-1, width).T @ M[:, k:, :].reshape(-1, width) for k in range(n_k + 1)]
+    lag = np.abs(np.subtract.outer(np.arange(width), np.arange(width)))
+
+    def expected(a):
+        R = a ** lag
+        return np.array([np.sum(Bk * R.T) for Bk in B])
+
+    def misfit(a):
+        ex = expected(a)
+        g0 = ex @ c_hat / (ex @ ex)
+        return np.sum((c_hat - g0 * ex) ** 2), g0
+
+    grid = np.linspace(-0.3, 0.95, 26)
+    a0 = grid[int(np.argmin([misfit(a)[0] for a in grid]))]
+    opt = minimize_scalar(lambda a: misfit(a)[0], bounds=(max(-0.35, a0 - 0.06), min(0.97, a0 + 0.06)),
+                          method="bounded")
+    a = float(opt.x)
+    gamma0 = float(misfit(a)[1])
+    # lag-1 correlation of n independent normalised pairs has sd ~ 1/sqrt(n)
+    se = 1.0 / math.sqrt(sample.size * (width - 3))
+    return gamma0, a, se
