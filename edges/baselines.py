@@ -155,7 +155,19 @@ def _slope_fit(win, lo, hi, x_thr, noise_var, n_b, low=0.2, high=0.8, reach_px=3
 def threshold_edges(micrograph: Micrograph, *, level: float = 0.5, window_px: int = 31,
                     n_plateau_px: int = 4, polarity: str = "auto", orientation: str = "auto",
                     layout: LineLayout | None = None) -> EdgeTraces:
-    """Edge positions where each row crosses ``level`` of its local plateau-to-plateau range."""
+    """Edge positions where each row crosses ``level`` of its local plateau-to-plateau range.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from edges import Micrograph, SEMSettings, render_micrograph
+    >>> left = np.array([[40.0] * 64, [104.0] * 64])
+    >>> pixels, _ = render_micrograph(left, left + 32, n_cols=176, rng=np.random.default_rng(1),
+    ...                               settings=SEMSettings(dose_per_pixel=500, edge_peak=0.0))
+    >>> traces = threshold_edges(Micrograph(pixels=pixels, pixel_size_nm=1.0))
+    >>> traces.detector, np.round(np.nanmean(traces.position_nm, axis=1)).tolist()
+    ('threshold', [40.0, 72.0, 104.0, 136.0])
+    """
     return _detect(micrograph, mode="threshold", level=level, window_px=window_px,
                    n_plateau_px=n_plateau_px, polarity=polarity, orientation=orientation, layout=layout)
 
@@ -163,6 +175,17 @@ def threshold_edges(micrograph: Micrograph, *, level: float = 0.5, window_px: in
 def slope_edges(micrograph: Micrograph, *, window_px: int = 31, n_plateau_px: int = 4,
                 polarity: str = "auto", orientation: str = "auto",
                 layout: LineLayout | None = None) -> EdgeTraces:
-    """Edge positions from a straight line through the 20-80% part of each row's edge."""
+    """Edge positions from a straight line through the 20-80% part of each row's edge.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from edges import Micrograph, SEMSettings, render_micrograph
+    >>> left = np.array([[40.0] * 64, [104.0] * 64])
+    >>> pixels, _ = render_micrograph(left, left + 32, n_cols=176, rng=np.random.default_rng(1),
+    ...                               settings=SEMSettings(dose_per_pixel=500, edge_peak=0.0))
+    >>> slope_edges(Micrograph(pixels=pixels, pixel_size_nm=1.0)).position_nm.shape
+    (4, 64)
+    """
     return _detect(micrograph, mode="slope", level=0.5, window_px=window_px, n_plateau_px=n_plateau_px,
                    polarity=polarity, orientation=orientation, layout=layout)

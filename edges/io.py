@@ -70,6 +70,15 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
     ------
     MicrographError
         Unreadable, empty, not 2-D (after RGB conversion), non-finite data, or no pixel size.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, numpy as np
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "flat.tif"
+    >>> _ = write_micrograph(path, np.full((32, 48), 100.0), pixel_size_nm=0.8)
+    >>> m = read_micrograph(path)
+    >>> m.pixels.shape, round(m.pixel_size_nm, 3)
+    ((32, 48), 0.8)
     """
     path = Path(path)
     if not path.exists():
@@ -120,6 +129,12 @@ def write_micrograph(path, pixels, *, pixel_size_nm: float, bit_depth: int = 16)
 
     Values are rounded and clipped to the integer range of ``bit_depth`` (8 or 16); pass
     ``bit_depth=32`` for a float32 TIFF that keeps values exactly.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, numpy as np
+    >>> write_micrograph(pathlib.Path(tempfile.mkdtemp()) / "a.png", np.zeros((8, 8)), pixel_size_nm=1.0).suffix
+    '.png'
     """
     path = Path(path)
     pixels = np.asarray(pixels, dtype=np.float64)
@@ -161,13 +176,29 @@ def _jsonable(value):
 
 
 def write_truth(path, truth: dict) -> Path:
-    """Write a truth record (plain dict of numbers and arrays) as JSON."""
+    """Write a truth record (plain dict of numbers and arrays) as JSON.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, numpy as np
+    >>> path = write_truth(pathlib.Path(tempfile.mkdtemp()) / "t.json", {"edge_nm": np.zeros((2, 3))})
+    >>> read_truth(path)["edge_nm"].shape
+    (2, 3)
+    """
     path = Path(path)
     path.write_text(json.dumps(_jsonable(truth), indent=1))
     return path
 
 
 def read_truth(path) -> dict:
-    """Read a truth record; list values that were arrays come back as numpy arrays."""
+    """Read a truth record; list values that were arrays come back as numpy arrays.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib, numpy as np
+    >>> path = write_truth(pathlib.Path(tempfile.mkdtemp()) / "t.json", {"sigma": 1.5})
+    >>> read_truth(path)["sigma"]
+    1.5
+    """
     raw = json.loads(Path(path).read_text())
     return {k: (np.asarray(v, dtype=float) if isinstance(v, list) else v) for k, v in raw.items()}

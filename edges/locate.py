@@ -15,10 +15,15 @@ from scipy import ndimage
 
 from ._types import Micrograph
 
-__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX"]
+__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX", "POLARITIES",
+           "ORIENTATIONS"]
 
 #: Smallest half-width of a fit window (pixels either side of the edge) that is still fitted.
 MIN_HALF_WINDOW_PX = 4
+#: Line polarities: "auto" (bright lines), "bright", "dark".
+POLARITIES = ("auto", "bright", "dark")
+#: Line directions: "auto", "vertical", "horizontal" (horizontal images are transposed).
+ORIENTATIONS = ("auto", "vertical", "horizontal")
 _MAX_TILT_DEG = 3.0
 
 
@@ -186,11 +191,21 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     ------
     LocateError
         No whole line, or no contrast between lines and spaces.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from edges import Micrograph, render_micrograph
+    >>> left = np.array([[30.0] * 64, [94.0] * 64])
+    >>> pixels, _ = render_micrograph(left, left + 32, n_cols=160, rng=np.random.default_rng(0))
+    >>> layout = locate_edges(Micrograph(pixels=pixels, pixel_size_nm=1.0))
+    >>> [e.side for e in layout.edges]
+    ['left', 'right', 'left', 'right']
     """
-    if polarity not in ("auto", "bright", "dark"):
-        raise ValueError(f"polarity={polarity!r}: must be 'auto', 'bright' or 'dark'")
-    if orientation not in ("auto", "vertical", "horizontal"):
-        raise ValueError(f"orientation={orientation!r}: must be 'auto', 'vertical' or 'horizontal'")
+    if polarity not in POLARITIES:
+        raise ValueError(f"polarity={polarity!r}: must be one of {POLARITIES}")
+    if orientation not in ORIENTATIONS:
+        raise ValueError(f"orientation={orientation!r}: must be one of {ORIENTATIONS}")
     if window_px % 2 != 1 or window_px < 2 * MIN_HALF_WINDOW_PX + 1:
         raise ValueError(f"window_px={window_px}: must be an odd integer >= {2 * MIN_HALF_WINDOW_PX + 1}")
     _validate(micrograph)

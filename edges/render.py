@@ -125,6 +125,14 @@ def expected_row_profile(columns_nm, left_nm, right_nm, settings: SEMSettings) -
 
     ``left_nm`` and ``right_nm`` broadcast against ``columns_nm`` (e.g. shapes (rows, 1, lines)
     against (1, cols, 1)); the last axis is summed over lines.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> cols = np.arange(64.0)[:, None]                # (cols, lines): one line from 16 to 48 nm
+    >>> p = expected_row_profile(cols, np.array([16.0]), np.array([48.0]), SEMSettings(edge_peak=0.0))
+    >>> bool(p[32] > p[0])                             # the line is brighter than the space
+    True
     """
     s = settings
     hi, lo = (s.line_level, s.space_level) if s.polarity == "bright" else (s.space_level, s.line_level)
@@ -173,6 +181,14 @@ def render_micrograph(left_nm, right_nm, *, n_cols: int, settings: SEMSettings =
         ((2 n_lines, n_rows), edges sorted left to right), ``edge_sigma_nm``,
         ``width_sigma_nm``, ``centre_sigma_nm`` (realised, straight line removed),
         ``cd_nm`` and the settings.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> left = np.full((1, 32), 20.0)
+    >>> pixels, truth = render_micrograph(left, left + 30, n_cols=72, rng=np.random.default_rng(0))
+    >>> pixels.shape, truth["edge_nm"].shape
+    ((32, 72), (2, 32))
     """
     _validate_settings(settings)
     s = settings

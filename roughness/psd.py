@@ -1,6 +1,6 @@
 """Power spectral density of edge, width and centre traces.
 
-Convention (one-sided, METHODS section 1): for a detrended trace z of N samples spaced dy nm,
+Convention (one-sided): for a detrended trace z of N samples spaced dy nm,
 window w normalised by sum(w^2),
 
     P1_k = 2 dy |sum_n w_n z_n exp(-2 pi i k n / N)|^2 / sum_n w_n^2,   f_k = k / (N dy),
@@ -18,11 +18,14 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import signal
 
-__all__ = ["DETRENDS", "detrend_basis", "detrend", "window_values", "periodogram", "bridge_gaps",
-           "PreparedTraces"]
+__all__ = ["DETRENDS", "WINDOWS", "detrend_basis", "detrend", "window_values", "periodogram",
+           "cross_periodogram", "bridge_gaps", "PreparedTraces"]
 
 #: Detrend name -> polynomial order removed (None: nothing removed).
-DETRENDS = {"none": None, "mean": 0, "linear": 1, "quadratic": 2}
+DETRENDS = {"linear": 1, "mean": 0, "quadratic": 2, "none": None}
+
+#: PSD tapers: the periodic Hann window (scipy's default) and none.
+WINDOWS = ("hann", "boxcar")
 
 
 def _validate_detrend(detrend_):
@@ -31,7 +34,15 @@ def _validate_detrend(detrend_):
 
 
 def detrend_basis(n_rows: int, detrend_: str) -> np.ndarray:
-    """Orthonormal (n_rows, p) basis Q of the removed polynomials (Legendre columns, QR)."""
+    """Orthonormal (n_rows, p) basis Q of the removed polynomials (Legendre columns, QR).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> q = detrend_basis(100, "linear")
+    >>> q.shape, bool(np.allclose(q.T @ q, np.eye(2)))
+    ((100, 2), True)
+    """
     _validate_detrend(detrend_)
     order = DETRENDS[detrend_]
     if order is None:
@@ -42,13 +53,27 @@ def detrend_basis(n_rows: int, detrend_: str) -> np.ndarray:
 
 
 def detrend(traces, detrend_: str = "linear"):
-    """Remove a least-squares polynomial from each row of ``traces`` ((..., n_rows))."""
+    """Remove a least-squares polynomial from each row of ``traces`` ((..., n_rows)).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> bool(np.allclose(detrend(np.arange(10.0) * 2 + 5, "linear"), 0))
+    True
+    """
     x = np.asarray(traces, float)
     q = detrend_basis(x.shape[-1], detrend_)
     return x - (x @ q) @ q.T
 
 
 def window_values(n_rows: int, window: str) -> np.ndarray:
+    """The taper's values for ``n_rows`` samples (``"hann"``: periodic, as scipy.signal.get_window).
+
+    Examples
+    --------
+    >>> window_values(4, "hann").tolist()
+    [0.0, 0.5, 1.0, 0.5]
+    """
     if window == "boxcar":
         return np.ones(n_rows)
     if window == "hann":
@@ -70,6 +95,16 @@ def periodogram(z, *, row_spacing_nm: float, window: str = "hann"):
     -------
     frequency_per_nm : (n_rows // 2 + 1,) ndarray
     psd_nm3 : (..., n_rows // 2 + 1) ndarray
+
+    Examples
+    --------
+    Parseval with the boxcar window: the PSD integrates to the mean square.
+
+    >>> import numpy as np
+    >>> z = np.random.default_rng(0).normal(size=256)
+    >>> f, p = periodogram(z, row_spacing_nm=0.5, window="boxcar")
+    >>> bool(np.isclose(p.sum() * f[1], np.mean(z ** 2)))
+    True
     """
     z = np.asarray(z, float)
     n = z.shape[-1]
@@ -86,7 +121,16 @@ def periodogram(z, *, row_spacing_nm: float, window: str = "hann"):
 
 
 def cross_periodogram(za, zb, *, row_spacing_nm: float, window: str = "hann"):
-    """Real part of the one-sided cross-PSD of paired traces (nm^3); sum times df is cov."""
+    """Real part of the one-sided cross-PSD of paired traces (nm^3); sum times df is cov.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> z = np.random.default_rng(0).normal(size=128)
+    >>> p = cross_periodogram(z, z, row_spacing_nm=1.0, window="boxcar")
+    >>> bool(np.isclose(p.sum() / 128, np.mean(z ** 2)))
+    True
+    """
     n = za.shape[-1]
     w = window_values(n, window)
     sa, sb = np.fft.rfft(za * w, axis=-1), np.fft.rfft(zb * w, axis=-1)
@@ -127,6 +171,14 @@ def bridge_gaps(position_nm, sigma_nm, valid, *, max_gap_rows: int = 3,
     An edge with more than ``max_invalid_fraction`` invalid rows, or a longer gap, is excluded
     with its reason (never silently): interpolation smooths the roughness and the noise there.
     Gaps at either end are filled with the nearest valid row.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> x = np.array([[0.0, 1.0, np.nan, 3.0, 4.0] * 4])
+    >>> prep = bridge_gaps(x, np.ones_like(x), np.isfinite(x), max_invalid_fraction=0.3)
+    >>> float(prep.position_nm[0, 2]), int(prep.bridged_rows[0])
+    (2.0, 4)
     """
     pos = np.array(position_nm, float)
     sig = np.array(sigma_nm, float)

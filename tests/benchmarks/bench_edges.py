@@ -25,7 +25,8 @@ import numpy as np
 from scipy import optimize
 
 from edges.baselines import threshold_edges
-from edges.fit import EdgeWindows, fit_edges
+from edges._windows import cut_windows
+from edges.fit import fit_edges
 from edges.io import read_micrograph, write_micrograph
 from edges.locate import locate_edges
 from edges.profiles import EdgeShape, parametric_profile, tabulate
@@ -64,7 +65,7 @@ def main():
     t_thr, _ = _best(lambda: threshold_edges(m, layout=lay))
     half = np.array([e.half_window_px for e in lay.edges])
     guess = lay.guess_columns(np.arange(1024))
-    t_win, win = _best(lambda: EdgeWindows(m.pixels, guess, half))
+    t_win, win = _best(lambda: cut_windows(m.pixels, guess, half))
     shape = EdgeShape(2.0, 0.8, 2.0, 2.5)
     # one pass against curve_fit, same rows and start
     one = tabulate([lambda u, derivative=False: parametric_profile(u, shape, derivative=derivative)], 50)

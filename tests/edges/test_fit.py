@@ -11,7 +11,7 @@ from edges.fit import LOW_CONTRAST_CNR, fit_edges
 from edges.profiles import EdgeShape, parametric_profile, tabulate
 from edges.render import expected_row_profile
 
-from ._images import line_space
+from .._images import line_space
 
 
 def _half_level_offset(settings):

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from roughness._selfaffine import self_affine_psd, two_sided_from_one_sided
-from roughness.model import correlation_length_from_acf, fit_psd_model
+from roughness.psd_model import correlation_length_from_acf, fit_psd_model
 from roughness.psd import detrend, periodogram
 from roughness.synth import rough_edges
 
@@ -32,6 +32,8 @@ def test_fit_recovers_xi_and_h_within_reported_uncertainty(rng, h):
     fit = fit_psd_model(f, p, 0.0, n_resamples=60, rng=rng)
     assert fit.h_determined
     assert abs(fit.correlation_length_nm - xi) < 3 * fit.correlation_length_se_nm + 0.02 * xi
+    # + 2% of xi and 0.02 in H: the Whittle fit's known bias from Hann leakage at the lowest
+    # fitted bins (our checks), beside the 3-se sampling allowance
     assert abs(fit.roughness_exponent - h) < 3 * fit.roughness_exponent_se + 0.02
     assert fit.psd0_nm3 == pytest.approx(2 * fit.psd0_two_sided_nm3)
 
@@ -47,7 +49,7 @@ def test_h_not_determined_when_noise_hides_the_tail(rng):
 
 def test_acf_crossing_gives_xi_for_the_exponential(rng):
     # H = 1/2: the ACF falls to 1/e at tau = xi exactly; with L/xi = 200 the detrend bias is
-    # ~1% (METHODS 4.2); 300 edges give a sampling error of about 1%
+    # ~1% (the detrend removes ~ xi/L of the variance); 300 edges give a sampling error of ~1%
     xi = 5.0
     x = rough_edges(300, 1000, 1.0, sigma_nm=1.0, correlation_length_nm=xi, roughness_exponent=0.5, rng=rng)
     z = detrend(x, "linear")

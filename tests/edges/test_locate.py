@@ -7,7 +7,7 @@ import pytest
 from edges._types import Micrograph
 from edges.locate import LocateError, locate_edges
 
-from ._images import line_space
+from .._images import line_space
 
 
 @pytest.mark.parametrize("polarity", ["bright", "dark"])
@@ -19,7 +19,9 @@ def test_edges_found_for_either_polarity(rng, polarity, edge_peak):
     guess = np.array([e.column_px for e in lay.edges])
     true = truth["edge_nm"].mean(axis=1)
     assert guess.size == true.size
-    # the coarse guess lies within the fit's reach (a bright rim can pull it a few px)
+    # the coarse guess need only lie within the fit's reach: the grid search of the coarse pass
+    # covers +-(half window - 3) = +-12 px; a bright rim pulls the row-mean crossing by up to
+    # ~rim offset + blur (3-4 px here), the roughness (1.5 nm sd) averages out over 256 rows
     assert np.max(np.abs(guess - true)) < 6
     assert [e.side for e in lay.edges[:2]] == ["left", "right"]
     assert lay.micrograph.polarity == polarity
@@ -30,12 +32,15 @@ def test_horizontal_lines_are_turned(rng):
     assert m.pixels.shape == (260, 200)
     lay = locate_edges(m)
     assert lay.micrograph.rotated and lay.micrograph.pixels.shape == (200, 260)
+    # same reach argument as above (no rim here: the mean profile's crossing is within ~1 px)
     np.testing.assert_allclose([e.column_px for e in lay.edges], truth["edge_nm"].mean(1), atol=4)
 
 
 def test_tilt_is_followed(rng):
     m, truth, _ = line_space(rng, n_rows=512, n_cols=260, tilt_deg=2.0, dose_per_pixel=60)
     lay = locate_edges(m)
+    # 16 blocks of 32 rows: each block shift has sd ~ roughness / sqrt(32 rows / xi) ~ 0.8 px over
+    # a 480-row lever arm, i.e. ~2% of the 0.035 px/row slope (5% is ~2.5 sd)
     assert lay.tilt_px_per_row == pytest.approx(math.tan(math.radians(2.0)), rel=0.05)
     g = lay.guess_columns(np.arange(512))
     # per-row guesses follow the tilted edges to within the roughness and rim offset

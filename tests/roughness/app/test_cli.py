@@ -6,7 +6,7 @@ import pytest
 
 from edges.io import read_micrograph, read_truth
 from edges.render import SEMSettings
-from roughness.cli import main
+from roughness.app.cli import main
 
 
 def test_simulate_writes_images_and_truth(tmp_path):
@@ -29,7 +29,7 @@ def test_simulate_help_documents_every_setting(capsys):
         assert opt in text
     assert "nm" in text and "degrees" in text
     # no SEMSettings field is left without an option (dest names of the simulate parser)
-    from roughness.cli import build_parser
+    from roughness.app.cli import build_parser
 
     sim = next(a for a in build_parser()._subparsers._group_actions[0].choices.values() if a.prog.endswith("simulate"))
     dests = {a.dest for a in sim._actions} | {"shot_noise"}      # shot_noise is --no-shot-noise

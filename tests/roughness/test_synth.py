@@ -46,7 +46,7 @@ def test_mean_periodogram_matches_model_within_chi_square_scatter(rng):
 
 
 def test_variance_of_long_edges(rng):
-    # E[mean x^2] of a periodic Thorsos edge is sum_k S(f_k) df (METHODS 5), which for xi >> dy
+    # E[mean x^2] of a periodic Thorsos edge is sum_k S(f_k) df (Parseval for the periodic synthesis), which for xi >> dy
     # is sigma^2 less the tail beyond Nyquist.  Standard error from the spread over edges.
     n, dy, m = 2 ** 15, 1.0, 48
     kw = dict(sigma_nm=1.3, correlation_length_nm=40.0, roughness_exponent=0.5)

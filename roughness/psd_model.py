@@ -2,15 +2,22 @@
 
 The *biased* averaged PSD is fitted with ``S1(f; sigma, xi, H) + N``, N the noise floor from the
 fit covariance (fixed, or free where the covariance is not claimed calibrated), by maximising the
-Whittle likelihood of the averaged periodogram (METHODS 4.3).  Bins
+Whittle likelihood of the averaged periodogram (Whittle 1953).  Bins
 k = 0..3 are left out (detrending and window leakage).  PSD(0) is a model parameter, never read
 from bin 0.  Reported one-sided (quietedge's convention) and two-sided (the literature's).
-Uncertainties: bootstrap over traces (curve_fit's covariance assumes independent bins, and
-Hann-windowed bins are not).
+Uncertainties: bootstrap over the units averaged (the traces of one image, the images of a
+group); curve_fit's covariance assumes independent bins, and Hann-windowed bins are not.
+
+References
+----------
+Whittle, P. (1953). Estimation and information in stationary time series. Arkiv for Matematik
+2, 423-434.  doi:10.1007/BF02590998
+Palasantzas, G. (1993). Roughness spectrum and surface width of self-affine fractal surfaces via
+the K-correlation model. Phys. Rev. B 48, 14472.  doi:10.1103/PhysRevB.48.14472
 
 Identifiability: H needs the roughness tail to rise above the floor well beyond the knee at
-1 / (2 pi xi).  METHODS 4.3 suggests 2 pi xi f_max >~ 10 (f_max where the model meets the floor);
-in our checks 500 edges gave H within its bootstrap error already at 2 pi xi f_max ~ 7, so the
+1 / (2 pi xi).  A common rule of thumb asks for 2 pi xi f_max >~ 10 (f_max where the model meets
+the floor); in our checks 500 edges gave H within its bootstrap error already at 2 pi xi f_max ~ 7, so the
 rule here is 2 pi xi f_max >= 5 *and* a bootstrap standard error of H below 0.2; otherwise H is
 reported as not determined (NaN).
 """
@@ -76,8 +83,7 @@ def _fit_once(f, p, floor, start, free_floor=False, extra_starts=True):
 
     The Whittle likelihood is the exact likelihood of independent exponential (or averaged,
     Gamma) periodogram ordinates, so unlike least squares on logarithms it needs no correction
-    for the mean of a log and stays unbiased with the few traces of one image (Whittle 1953;
-    METHODS 4.3).
+    for the mean of a log and stays unbiased with the few traces of one image (Whittle 1953).
     """
     def cost(theta):
         s, xi, h = math.exp(theta[0]), math.exp(theta[1]), theta[2]
@@ -99,8 +105,8 @@ def _fit_once(f, p, floor, start, free_floor=False, extra_starts=True):
     return np.array([math.exp(best.x[0]), math.exp(best.x[1]), best.x[2], n])
 
 
-def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann", skip_bins: int = 4,
-                  n_resamples: int = 100, floor: str = "fixed",
+def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, weights=None, window: str = "hann",
+                  skip_bins: int = 4, n_resamples: int = 100, floor: str = "fixed",
                   rng: np.random.Generator | None = None) -> PSDModelFit:
     """Fit sigma, xi, H to the biased PSDs of several traces.
 
@@ -112,14 +118,43 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
     Parameters
     ----------
     frequency_per_nm : (n_freq,) ndarray
-    psd_nm3 : (n_traces, n_freq) ndarray
-        One-sided biased PSDs of the traces (same grid).
-    floor_nm3 : (n_traces,) ndarray or float
-        Their noise floors.
+        Cycles per nm.
+    psd_nm3 : (n_units, n_freq) ndarray
+        One-sided biased PSDs (nm^3) of the units averaged: traces of one image, or the mean
+        PSDs of several images on a common grid.
+    floor_nm3 : (n_units,) ndarray or float
+        Their noise floors (nm^3).
+    weights : (n_units,) ndarray, optional
+        Weights of the units in the average (e.g. traces times line length); equal if None.
+    window : {"hann", "boxcar"}
+        Taper the periodograms were computed with.
+    skip_bins : int
+        Lowest bins left out (detrending and window leakage).
+    n_resamples : int
+        Bootstrap resamples of the units for the standard errors (none below 5 units).
+    floor : {"fixed", "free"}
+    rng : numpy.random.Generator, optional
+        Source of the resampling; None draws fresh entropy.
+
+    Returns
+    -------
+    PSDModelFit
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from roughness.psd_model import fit_psd_model
+    >>> from roughness._selfaffine import self_affine_psd
+    >>> f = np.fft.rfftfreq(1024, 1.0)
+    >>> p = self_affine_psd(f, sigma_nm=1.5, correlation_length_nm=10.0, roughness_exponent=0.7) + 0.02
+    >>> m = fit_psd_model(f, p[None, :], 0.02, n_resamples=0)
+    >>> round(m.correlation_length_nm, 1), round(m.roughness_exponent, 2)
+    (10.0, 0.7)
     """
     f = np.asarray(frequency_per_nm, float)
     p = np.atleast_2d(np.asarray(psd_nm3, float))
     floors = np.broadcast_to(np.asarray(floor_nm3, float), (p.shape[0],))
+    wts = np.ones(p.shape[0]) if weights is None else np.broadcast_to(np.asarray(weights, float), (p.shape[0],))
     if floor not in ("fixed", "free"):
         raise ValueError(f"floor={floor!r}: must be 'fixed' or 'free'")
     n_tr, n_f = p.shape
@@ -127,11 +162,12 @@ def fit_psd_model(frequency_per_nm, psd_nm3, floor_nm3, *, window: str = "hann",
         raise ValueError(f"psd_nm3 of shape {p.shape}: needs at least one trace and {skip_bins + 6} bins")
     sel = np.arange(n_f) >= skip_bins
     sel[-1] = False                        # the last bin may be Nyquist's (chi-square, 1 dof)
-    rng = np.random.default_rng(0) if rng is None else rng
+    rng = np.random.default_rng() if rng is None else rng
 
     def fit(rows, around=None):
-        mean = p[rows].mean(axis=0)
-        floor_ = float(floors[rows].mean())
+        w = wts[rows] / wts[rows].sum()
+        mean = w @ p[rows] if weights is not None else p[rows].mean(axis=0)
+        floor_ = float(w @ floors[rows]) if weights is not None else float(floors[rows].mean())
         var0 = float(np.sum(mean[1:] - floor_) * (f[1] - f[0]))
         s0 = math.sqrt(max(var0, 1e-6))
         # xi start from the half-power point of the floor-corrected spectrum
@@ -174,8 +210,15 @@ def correlation_length_from_acf(acf_nm2, *, noise_var_nm2: float, row_spacing_nm
     """Model-free correlation length: first 1/e crossing of the noise-corrected ACF (nm).
 
     The biased ACF's lag-0 value holds the noise variance too; it is normalised by
-    ``R(0) - noise_var`` (METHODS 4.2), then linearly interpolated.  Biased low by detrending
+    ``R(0) - noise_var``, then linearly interpolated.  Biased low by detrending
     when L / xi < ~50.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> acf = np.exp(-np.arange(100) / 8.0)          # exponential ACF, xi = 8 rows
+    >>> round(correlation_length_from_acf(acf, noise_var_nm2=0.0, row_spacing_nm=1.0), 2)
+    8.0
     """
     acf = np.asarray(acf_nm2, float)
     r0 = acf[0] - noise_var_nm2

@@ -1,5 +1,4 @@
 """Bad pixels, saturation and the layering rule."""
-import ast
 from dataclasses import replace
 from pathlib import Path
 
@@ -9,7 +8,7 @@ from edges._types import REASON_CODES
 from edges.baselines import slope_edges, threshold_edges
 from edges.fit import fit_edges
 
-from ._images import line_space
+from .._images import line_space
 
 
 def test_nan_and_saturated_rows_are_flagged_not_dropped(rng):
@@ -33,6 +32,9 @@ def test_baselines_share_the_output_type(rng):
         et = det(m)
         assert et.position_nm.shape == truth["edge_nm"].shape and et.detector in ("threshold", "slope")
         err = et.position_nm - truth["edge_nm"]
+        # dose 2000 (CNR ~ 60): linearised position sd ~ 0.05-0.1 px plus the detectors' known
+        # sub-pixel interpolation bias (up to ~0.3 px peak to peak for a 3 nm blur, common
+        # practice); 0.5 px bounds both
         assert np.nanstd(err) < 0.5 and np.all(np.isfinite(et.sigma_nm[et.valid]))
 
 
@@ -51,12 +53,3 @@ def test_threshold_agrees_with_scikit_image_contours(rng):
         r, c = np.rint(rows[on_row]).astype(int), cols[on_row]
         e = np.argmin(np.abs(truth["edge_nm"][:, 0][:, None] - c[None, :].mean()), axis=0)
         np.testing.assert_allclose(c, et.position_nm[e, r], atol=1e-3)
-
-
-def test_edges_package_never_imports_roughness():
-    for path in Path(__file__).resolve().parents[1].joinpath("edges").rglob("*.py"):
-        tree = ast.parse(path.read_text())
-        for node in ast.walk(tree):
-            names = ([a.name for a in node.names] if isinstance(node, ast.Import)
-                     else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
-            assert not any(n.split(".")[0] == "roughness" for n in names), path

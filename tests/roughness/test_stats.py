@@ -12,7 +12,7 @@ from roughness.stats import analyse_traces, expected_measured_variance, frames_f
     sampling_plan, summarize
 from roughness.synth import edge_pairs, rough_edges
 
-from ._traces import make_traces
+from .._traces import make_traces
 
 KW = dict(sigma_nm=1.5, correlation_length_nm=8.0, roughness_exponent=0.6)
 
@@ -33,65 +33,66 @@ def _noisy(rng, n_lines=250, n_rows=512, rho=0.0, noise=None, row_correlation=0.
 
 def test_unbiased_sigma_recovers_the_realised_roughness(rng):
     clean, noisy, s = _noisy(rng)
-    truth = summarize([analyse_traces(clean)], n_resamples=0 or 10)
-    est = summarize([analyse_traces(noisy)], n_resamples=200)
+    truth = summarize([analyse_traces(clean).lines], n_resamples=0 or 10)
+    est = summarize([analyse_traces(noisy).lines], n_resamples=200)
     # unbiased within 2% of the realised sigma (its own sampling error over 500 edges: ~0.4%)
-    assert est["edge_sigma_unbiased_nm"] == pytest.approx(truth["edge_sigma_biased_nm"], rel=0.02)
-    # biased^2 = truth^2 + noise^2 (noise share after a line detrend, METHODS 2.2)
+    assert est.edge.sigma_unbiased_nm == pytest.approx(truth.edge.sigma_biased_nm, rel=0.02)
+    # biased^2 = truth^2 + noise^2 (noise share after a line detrend: sum s_i^2 (1 - P_ii) / N)
     keep = 1 - 2 / s.size     # (N - p)/N for p = 2 removed columns, to first order
-    assert est["edge_sigma_biased_nm"] ** 2 == pytest.approx(
-        truth["edge_sigma_biased_nm"] ** 2 + np.mean(s ** 2) * keep, rel=0.01)
-    assert est["width_sigma_unbiased_nm"] == pytest.approx(truth["width_sigma_biased_nm"], rel=0.02)
+    assert est.edge.sigma_biased_nm ** 2 == pytest.approx(
+        truth.edge.sigma_biased_nm ** 2 + np.mean(s ** 2) * keep, rel=0.01)
+    assert est.width.sigma_unbiased_nm == pytest.approx(truth.width.sigma_biased_nm, rel=0.02)
 
 
 def test_noise_floor_matches_the_noise_spectrum_and_the_plateau(rng):
     clean, noisy, s = _noisy(rng)
     im_noisy, im_clean = analyse_traces(noisy), analyse_traces(clean)
-    pure_noise = im_noisy.psd["edge"] - im_clean.psd["edge"]
+    pure_noise = im_noisy.edge.psd_nm3 - im_clean.edge.psd_nm3
     # the noise alone (cross terms average out): its mean level at f > 0.1/nm against the
     # covariance floor (Hann-weighted mean of s^2); 500 traces x 200 bins: se ~ 0.4%
     f = im_noisy.frequency_per_nm
     sel = (f > 0.1) & (f < 0.49)
-    floor = im_noisy.psd["edge_floor"].mean()
+    floor = im_noisy.edge.floor_nm3.mean()
     assert pure_noise[:, sel].mean() == pytest.approx(floor, rel=0.03)
     # plateau of the noisy PSD less the roughness tail (known here from the clean PSD)
-    level, sd = plateau_floor(f, im_noisy.psd["edge"].mean(0), n_traces=500, row_spacing_nm=1.0,
-                              roughness_tail_nm3=im_clean.psd["edge"].mean(0))
+    level, sd = plateau_floor(f, im_noisy.edge.psd_nm3.mean(0), n_traces=500, row_spacing_nm=1.0,
+                              roughness_tail_nm3=im_clean.edge.psd_nm3.mean(0))
     assert not floors_disagree(level, sd, floor)
 
 
 def test_disagreement_flag_fires_for_noise_correlated_between_rows(rng):
     # AR(1) noise between rows (a = 0.6) with the same marginal variance: the covariance floor
-    # is right for the variance but the spectrum is not white (METHODS 2.4, item 1)
+    # is right for the variance but the spectrum is not white
     clean, noisy, s = _noisy(rng, noise=np.full(512, 0.8), row_correlation=0.6)
     im_noisy, im_clean = analyse_traces(noisy), analyse_traces(clean)
-    level, sd = plateau_floor(im_noisy.frequency_per_nm, im_noisy.psd["edge"].mean(0), n_traces=500,
-                              row_spacing_nm=1.0, roughness_tail_nm3=im_clean.psd["edge"].mean(0))
-    assert floors_disagree(level, sd, im_noisy.psd["edge_floor"].mean())
+    level, sd = plateau_floor(im_noisy.frequency_per_nm, im_noisy.edge.psd_nm3.mean(0), n_traces=500,
+                              row_spacing_nm=1.0, roughness_tail_nm3=im_clean.edge.psd_nm3.mean(0))
+    assert floors_disagree(level, sd, im_noisy.edge.floor_nm3.mean())
 
 
 def test_width_centre_and_correlation_with_correlated_edges(rng):
     # Truth: the same edges without noise.  Tolerance: 4 x the bootstrap standard error.
     clean, noisy, _ = _noisy(rng, rho=0.4)
-    truth = summarize([analyse_traces(clean)], n_resamples=10)
-    est = summarize([analyse_traces(noisy)], n_resamples=400)
+    truth = summarize([analyse_traces(clean).lines], n_resamples=10)
+    est = summarize([analyse_traces(noisy).lines], n_resamples=400)
     for q in ("width", "centre"):
-        se = (est[f"{q}_sigma_unbiased_high_nm"] - est[f"{q}_sigma_unbiased_low_nm"]) / (2 * 1.96)
-        assert abs(est[f"{q}_sigma_unbiased_nm"] - truth[f"{q}_sigma_biased_nm"]) < 4 * se
-    se = (est["lr_correlation_unbiased_high"] - est["lr_correlation_unbiased_low"]) / (2 * 1.96)
-    assert abs(est["lr_correlation_unbiased"] - truth["lr_correlation_biased"]) < 4 * se
-    assert est["lr_correlation_biased"] < truth["lr_correlation_biased"] - 4 * se   # diluted by noise
+        e, t = est.quantity(q), truth.quantity(q)
+        se = (e.sigma_unbiased_high_nm - e.sigma_unbiased_low_nm) / (2 * 1.96)
+        assert abs(e.sigma_unbiased_nm - t.sigma_biased_nm) < 4 * se
+    se = (est.lr_correlation_unbiased_high - est.lr_correlation_unbiased_low) / (2 * 1.96)
+    assert abs(est.lr_correlation_unbiased - truth.lr_correlation_biased) < 4 * se
+    assert est.lr_correlation_biased < truth.lr_correlation_biased - 4 * se   # diluted by noise
     # sigma_w^2 = sigma_L^2 + sigma_R^2 - 2 cov (exact identity, same detrend everywhere)
-    v = est.values
-    rho = v["lr_correlation_unbiased"]
-    assert v["width_var_unbiased_nm2"] == pytest.approx(2 * v["edge_var_unbiased_nm2"] * (1 - rho), rel=0.03)
+    v = est
+    rho = v.lr_correlation_unbiased
+    assert v.width.var_unbiased_nm2 == pytest.approx(2 * v.edge.var_unbiased_nm2 * (1 - rho), rel=0.03)
 
 
 @pytest.mark.parametrize("l_over_xi,h", [(20, 0.5), (100, 0.5), (30, 0.8)])
 def test_finite_length_variance_matches_trace_formula(rng, l_over_xi, h):
-    # E[|(I-P) x|^2 / N] = tr((I-P) C) / N (METHODS 1.6); 3000 non-periodic edges, 4 se.
+    # E[|(I-P) x|^2 / N] = tr((I-P) C) / N; 3000 non-periodic edges, 4 se.
     # C is the generator's own ACF (the Riemann sum of the PSD on the 8x longer periodic grid:
-    # Thorsos edges lack the spectrum beyond Nyquist, METHODS 5), so the check is of the trace
+    # Thorsos edges lack the spectrum beyond Nyquist), so the check is of the trace
     # formula alone; the continuous model's value is larger by about that missing tail.
     from roughness._selfaffine import self_affine_psd
 
@@ -116,31 +117,37 @@ def test_interval_coverage(rng):
     trials = 300
     for _ in range(trials):
         _, noisy, _ = _noisy(rng, n_lines=12, n_rows=n_rows, noise=np.full(n_rows, 0.6))
-        est = summarize([analyse_traces(noisy)], n_resamples=400, rng=rng)
-        hits += est["edge_sigma_unbiased_low_nm"] <= truth <= est["edge_sigma_unbiased_high_nm"]
+        est = summarize([analyse_traces(noisy).lines], n_resamples=400, rng=rng)
+        hits += est.edge.sigma_unbiased_low_nm <= truth <= est.edge.sigma_unbiased_high_nm
     assert 0.90 <= hits / trials <= 0.99, hits / trials
 
 
-def test_below_noise_is_reported_not_clipped(rng):
-    left = 0.01 * rng.standard_normal((20, 128))
-    s = np.full(128, 1.0)
-    noisy = make_traces(left + rng.standard_normal(left.shape), 30 + left + rng.standard_normal(left.shape), s, s)
-    est = summarize([analyse_traces(noisy)], n_resamples=50)
-    if est["edge_var_unbiased_nm2"] <= 0:
-        assert est["edge_status"] == "below_noise" and math.isnan(est["edge_sigma_unbiased_nm"])
-    # the signed variance is kept (never clipped), so it scatters around the true ~0
-    assert abs(est["edge_var_unbiased_nm2"]) < 0.1
+@pytest.mark.parametrize("seed", [1, 2, 3, 4])
+def test_below_noise_is_reported_not_clipped(seed):
+    # Negative by construction: straight edges (no roughness) with real noise sd 0.5 nm whose
+    # fit covariance claims 1.0 nm.  E[var_b] = 0.25 k, var_n = 1.0 k with k = 1 - 2/128 (line
+    # detrend), so the unbiased variance is -0.75 k = -0.738 nm^2 for every seed; its sampling
+    # sd over 40 edges of 128 rows is 0.25 sqrt(2 / 5120) = 0.005 nm^2 (assert within 0.03).
+    rng = np.random.default_rng(seed)
+    n_rows, k = 128, 1 - 2 / 128
+    s = np.full(n_rows, 1.0)
+    left = 0.5 * rng.standard_normal((20, n_rows))
+    right = 30 + 0.5 * rng.standard_normal((20, n_rows))
+    est = summarize([analyse_traces(make_traces(left, right, s, s)).lines], n_resamples=200, rng=rng)
+    assert est.edge.status == "below_noise" and math.isnan(est.edge.sigma_unbiased_nm)
+    assert est.edge.var_unbiased_nm2 == pytest.approx(-0.75 * k, abs=0.03)     # kept signed, never clipped
+    assert est.edge.var_unbiased_high_nm2 < 0 and est.edge.sigma_unbiased_high_nm == 0.0
 
 
 def test_sampling_plan_and_frames():
     plan = sampling_plan(sigma_unbiased_nm=1.5, correlation_length_nm=8.0, roughness_exponent=0.5,
                          noise_sigma_nm=0.8, row_spacing_nm=1.0, line_length_nm=1000.0, target_relative_sd=0.02)
-    # METHODS 6 by hand, H = 1/2 (c = 1): M L = 2 [s^4 xi + 2 s^2 n^2 dy + n^4 dy] / (4 r^2 s^4)
+    # by hand, H = 1/2 (c = 1; the variance of a sample variance, Priestley 1981, sec. 5.3): M L = 2 [s^4 xi + 2 s^2 n^2 dy + n^4 dy] / (4 r^2 s^4)
     s2, n2 = 2.25, 0.64
     by_hand = 2 * (s2 * s2 * 8 + 2 * s2 * n2 + n2 * n2) / (4 * 0.02 ** 2 * s2 * s2)
-    assert plan["total_length_nm"] == pytest.approx(by_hand)
-    assert plan["lines_needed"] == math.ceil(by_hand / 1000)
-    assert plan["lines_needed_noise_free"] <= plan["lines_needed"]
+    assert plan.total_length_nm == pytest.approx(by_hand)
+    assert plan.lines_needed == math.ceil(by_hand / 1000)
+    assert plan.lines_needed_noise_free <= plan.lines_needed
     # noise variance 1.0 nm^2 now, roughness 2.0 nm^2: fraction 1/3; to reach 10% needs
     # 1.0 * 0.9 / (0.1 * 2.0) = 4.5 frames
     assert frames_for_noise_fraction(noise_var_nm2=1.0, unbiased_var_nm2=2.0, target_fraction=0.1) == pytest.approx(4.5)

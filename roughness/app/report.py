@@ -15,6 +15,7 @@ import math
 from pathlib import Path
 
 import numpy as np
+from matplotlib.figure import Figure
 
 __all__ = ["write_report", "plot_psd", "plot_overlay", "plot_traces"]
 
@@ -24,14 +25,23 @@ _C = {"biased": "#b5562a", "floor": "#7a7a7a", "unbiased": "#1f5f8b", "model": "
 def _png(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
-    import matplotlib.pyplot as plt
-
-    plt.close(fig)
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
 
 
 def plot_psd(ax, frequency_per_nm, psd_biased_nm3, floor_nm3, model=None, *, title=""):
-    """Biased PSD, noise floor, unbiased PSD (positive bins) and the model, log-log."""
+    """Biased PSD, noise floor, unbiased PSD (positive bins) and the model, log-log; returns ``ax``.
+
+    Parameters
+    ----------
+    ax : matplotlib.axes.Axes
+    frequency_per_nm : (n_freq,) ndarray
+    psd_biased_nm3 : (n_freq,) ndarray
+        One-sided PSD as measured.
+    floor_nm3 : float
+        White noise floor.
+    model : PSDModelFit, optional
+    title : str
+    """
     f = np.asarray(frequency_per_nm)[1:]
     pb = np.asarray(psd_biased_nm3)[1:]
     pu = pb - floor_nm3
@@ -40,8 +50,9 @@ def plot_psd(ax, frequency_per_nm, psd_biased_nm3, floor_nm3, model=None, *, tit
     pos = pu > 0
     ax.loglog(f[pos], pu[pos], ".", ms=2.5, color=_C["unbiased"], label="unbiased (floor removed)")
     if model is not None:
+        h = f"H {model.roughness_exponent:.2f}" if model.h_determined else "H not determined"
         ax.loglog(f, model.model_nm3(f), color=_C["model"], lw=1.5,
-                  label=f"model: xi {model.correlation_length_nm:.1f} nm, H {model.roughness_exponent:.2f}")
+                  label=f"model: xi {model.correlation_length_nm:.1f} nm, {h}")
     ax.set_xlabel("spatial frequency (1/nm)")
     ax.set_ylabel("PSD, one-sided (nm$^3$)")
     ax.set_title(title, fontsize=9)
@@ -51,7 +62,7 @@ def plot_psd(ax, frequency_per_nm, psd_biased_nm3, floor_nm3, model=None, *, tit
 
 
 def plot_overlay(ax, pixels, traces, *, max_rows=512):
-    """The image (rows along the lines) with the fitted edge positions drawn over it."""
+    """The image (rows along the lines) with the fitted edge positions over it; returns ``ax``."""
     rows = min(pixels.shape[0], max_rows)
     p = traces.row_spacing_nm
     ax.imshow(pixels[:rows], cmap="gray", aspect="auto", interpolation="nearest",
@@ -65,7 +76,7 @@ def plot_overlay(ax, pixels, traces, *, max_rows=512):
 
 
 def plot_traces(ax, traces, *, n_edges=6):
-    """Edge deviations from their straight-line fit, offset for clarity."""
+    """Edge deviations from their straight-line fit, offset for clarity; returns ``ax``."""
     y = np.arange(traces.n_rows) * traces.row_spacing_nm
     for k, e in enumerate(range(min(n_edges, traces.n_edges))):
         x = traces.position_nm[e]
@@ -83,19 +94,20 @@ def _fmt(x, nd=2):
     return "n/a" if x is None or not np.isfinite(x) else f"{x:.{nd}f}"
 
 
-def _ci(v, q):
-    lo, hi = v[f"{q}_sigma_unbiased_low_nm"], v[f"{q}_sigma_unbiased_high_nm"]
+def _ci(v):
+    lo, hi = v.sigma_unbiased_low_nm, v.sigma_unbiased_high_nm
     return f"{_fmt(3 * lo)} to {_fmt(3 * hi)}" if np.isfinite(lo) and np.isfinite(hi) else "n/a"
 
 
-def _table(v, model, confidence, finite_nm=math.nan):
+def _table(summary, model, finite_nm=math.nan):
     esc = html.escape
     rows = []
     for q, name in (("edge", "LER (edges)"), ("width", "LWR (widths)"), ("centre", "line placement (centres)")):
-        rows.append(f"<tr><td>{esc(name)}</td><td>{_fmt(3 * v[f'{q}_sigma_biased_nm'])}</td>"
-                    f"<td>{_fmt(3 * v[f'{q}_sigma_noise_nm'])}</td><td><b>{_fmt(3 * v[f'{q}_sigma_unbiased_nm'])}</b></td>"
-                    f"<td>{_ci(v, q)}</td><td>{_fmt(100 * v[f'{q}_noise_fraction'], 0)}%</td>"
-                    f"<td>{esc(v[f'{q}_status'])}</td></tr>")
+        v = summary.quantity(q)
+        rows.append(f"<tr><td>{esc(name)}</td><td>{_fmt(3 * v.sigma_biased_nm)}</td>"
+                    f"<td>{_fmt(3 * v.sigma_noise_nm)}</td><td><b>{_fmt(3 * v.sigma_unbiased_nm)}</b></td>"
+                    f"<td>{_ci(v)}</td><td>{_fmt(100 * v.noise_fraction, 0)}%</td>"
+                    f"<td>{esc(v.status)}</td></tr>")
     extra = []
     if model is not None:
         extra.append(f"correlation length {_fmt(model.correlation_length_nm, 1)} &plusmn; "
@@ -115,12 +127,12 @@ def _table(v, model, confidence, finite_nm=math.nan):
             extra.append(f"over the measured length, after detrending, the model expects {_fmt(finite_nm)} nm "
                          f"({_fmt(100 * (finite_nm / model.sigma_nm - 1), 1)}%: a finite, detrended line always "
                          "shows less roughness than an infinitely long one)")
-    extra.append(f"CD {_fmt(v['cd_nm'])} nm; left/right edge correlation {_fmt(v['lr_correlation_unbiased'])} "
-                 f"(noise-corrected; {_fmt(v['lr_correlation_biased'])} as measured)")
-    extra.append(f"{v['n_lines']} lines, {v['n_edges']} edges, {v['n_images']} image(s)")
+    extra.append(f"CD {_fmt(summary.cd_nm)} nm; left/right edge correlation {_fmt(summary.lr_correlation_unbiased)} "
+                 f"(noise-corrected; {_fmt(summary.lr_correlation_biased)} as measured)")
+    extra.append(f"{summary.n_lines} lines, {summary.n_edges} edges, {summary.n_images} image(s)")
     return ("<table><tr><th></th><th>3&sigma; biased (nm)</th><th>3&sigma; noise (nm)</th>"
-            f"<th>3&sigma; unbiased (nm)</th><th>{100 * confidence:.0f}% interval, unbiased</th>"
-            "<th>noise share</th><th>status</th></tr>" + "".join(rows) + "</table>"
+            f"<th>3&sigma; unbiased (nm)</th><th>{100 * summary.confidence:.0f}% interval, unbiased</th>"
+            "<th>noise fraction (of variance)</th><th>status</th></tr>" + "".join(rows) + "</table>"
             "<p class='facts'>" + "<br>".join(extra) + "</p>")
 
 
@@ -139,92 +151,75 @@ th{background:#eef3f7}
 """
 
 
-def write_report(meas, path, *, max_image_sections: int | None = None) -> Path:
-    """Write the HTML report of a Measurement to ``path``."""
-    import matplotlib
+def _figure(*, figsize, ncols=1):
+    fig = Figure(figsize=figsize)
+    axes = fig.subplots(1, ncols)
+    return fig, axes
 
-    matplotlib.use("Agg", force=False)
-    import matplotlib.pyplot as plt
 
-    from ._measure import REPORT_IMAGES
+def write_report(meas, path) -> Path:
+    """Write the HTML report of a Measurement to ``path`` (a projection: nothing is recomputed).
 
-    max_image_sections = REPORT_IMAGES if max_image_sections is None else max_image_sections
+    The first ``meas.settings.report_image_sections`` images get a section with figures.
+    """
     esc = html.escape
     s = meas.settings
     parts = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>quietedge roughness report</title>"
              f"<style>{_CSS}</style></head><body><h1>Roughness report</h1>"]
+    profile = f" ({esc(s.profile_model)} profile)" if s.detector == "model" else ""
     parts.append(f"<p class='note'>{len(meas.images)} image(s) measured, {len(meas.failures)} failed. Detector: "
-                 f"{esc(s.detector)} ({esc(s.profile_model)} profile), detrend {esc(s.detrend)}, PSD window "
+                 f"{esc(s.detector)}{profile}, detrend {esc(s.detrend)}, PSD window "
                  f"{esc(s.psd_window)}. Biased = as measured; noise = the part the edge-fit covariance attributes to "
-                 "image noise; unbiased = biased minus noise (variances subtract). PSDs are one-sided. Check results "
+                 "image noise; unbiased = biased minus noise (variances subtract); the noise fraction is a share "
+                 "of the variance, not of sigma. PSDs are one-sided. Check results "
                  "against your site's own metrology procedures before acting on them.</p>")
-    if meas.overall is not None:
+    g = meas.overall
+    if g is not None:
         parts.append("<h2>The whole set</h2>")
-        parts.append(_table(meas.overall.values, meas.overall_model, meas.overall.confidence))
-        if "edge" in meas.psd:
-            fig, axes = plt.subplots(1, 2, figsize=(10, 3.6))
-            d = meas.psd["edge"]
-            plot_psd(axes[0], meas.psd["frequency_per_nm"], d["biased"], d["floor"], meas.overall_model,
-                     title=f"edges, {d['n_traces']} traces")
-            if "width" in meas.psd:
-                w = meas.psd["width"]
-                plot_psd(axes[1], meas.psd["frequency_per_nm"], w["biased"], w["floor"], None,
-                         title=f"widths, {w['n_traces']} lines")
+        parts.append(_table(g.summary, g.model))
+        if g.n_grids > 1:
+            parts.append(f"<p class='note'>The images have {g.n_grids} different row counts or pixel sizes: their "
+                         "PSDs were interpolated onto the coarsest frequency resolution, up to the lowest Nyquist "
+                         "frequency, and averaged weighted by edge length.</p>")
+        if g.edge_psd is not None:
+            fig, axes = _figure(figsize=(10, 3.6), ncols=2)
+            d = g.edge_psd
+            plot_psd(axes[0], d.frequency_per_nm, d.psd_biased_nm3, d.noise_floor_nm3, g.model,
+                     title=f"edges, {d.n_traces} traces")
+            if g.width_psd is not None:
+                w = g.width_psd
+                plot_psd(axes[1], w.frequency_per_nm, w.psd_biased_nm3, w.noise_floor_nm3, None,
+                         title=f"widths, {w.n_traces} lines")
             parts.append(f"<div><img alt='pooled PSD' src='{_png(fig)}'></div>")
-        groups = sorted({r.group for r in meas.images})
-        if len(groups) > 1:
-            from ._tables import groups_table
-
-            gt = groups_table(meas)
-            parts.append("<h2>Groups side by side</h2><p class='note'>3&sigma; in nm. Frames: how many frames "
-                         "(averaged) would bring the noise share below 10%, assuming noise variance falls as "
-                         "1/frames. Lines: how many lines of this length give &plusmn;5% (1 sd) on the unbiased "
-                         "edge sigma.</p><table><tr><th>group</th><th>images</th>"
-                         "<th>LER 3&sigma; biased</th><th>LER 3&sigma; unbiased</th><th>LWR 3&sigma; biased</th>"
-                         "<th>LWR 3&sigma; unbiased</th><th>noise share</th><th>xi (nm)</th><th>H</th>"
-                         "<th>frames</th><th>lines</th></tr>")
-            for _, g in gt.iterrows():
-                parts.append(f"<tr><td>{esc(str(g['group']))}</td><td>{g['n_images']}</td>"
-                             f"<td>{_fmt(g['ler_3sigma_biased_nm'])}</td><td><b>{_fmt(g['ler_3sigma_unbiased_nm'])}</b>"
-                             f"</td><td>{_fmt(g['lwr_3sigma_biased_nm'])}</td><td><b>{_fmt(g['lwr_3sigma_unbiased_nm'])}"
-                             f"</b></td><td>{_fmt(100 * g['noise_fraction'], 0)}%</td>"
-                             f"<td>{_fmt(g['edge_correlation_length_nm'], 1)}</td>"
-                             f"<td>{_fmt(g['edge_roughness_exponent'])}</td>"
-                             f"<td>{_fmt(g['frames_for_10pct_noise'], 1)}</td><td>{_fmt(g['lines_for_5pct_sd'], 0)}</td></tr>")
-            parts.append("</table>")
-            fig, ax = plt.subplots(figsize=(6, 3))
-            x = np.arange(len(gt))
-            ax.bar(x - 0.2, gt["ler_3sigma_biased_nm"], 0.4, color=_C["biased"], label="biased")
-            ax.bar(x + 0.2, gt["ler_3sigma_unbiased_nm"], 0.4, color=_C["unbiased"], label="unbiased")
-            ax.set_xticks(x, [str(g) for g in gt["group"]])
-            ax.set_ylabel("LER 3$\\sigma$ (nm)")
-            ax.legend(frameon=False, fontsize=8)
-            parts.append(f"<div><img alt='groups' src='{_png(fig)}'></div>")
+        if len(meas.groups) > 1:
+            parts.append(_groups_section(meas.groups, s))
     if meas.failures:
         parts.append("<h2>Images that could not be measured</h2><table><tr><th>image</th><th>reason</th></tr>")
         for name, reason in meas.failures:
             parts.append(f"<tr><td>{esc(str(name))}</td><td>{esc(str(reason))}</td></tr>")
         parts.append("</table>")
     for k, r in enumerate(meas.images):
-        if k == max_image_sections:
+        if k == s.report_image_sections:
             parts.append(f"<p class='note'>{len(meas.images) - k} more image(s) are in summary.csv; "
                          "figures are drawn for the first ones only.</p>")
             break
+        a = r.analysis
         parts.append(f"<h2>{esc(r.name)}</h2>")
-        for code, text in r.warnings:
+        for code, text in a.warnings:
             parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
-        parts.append(_table(r.summary.values, r.model, r.summary.confidence, r.model_sigma_finite_nm))
+        parts.append(_table(a.summary, a.model, a.model_sigma_finite_nm))
         figs = []
-        if r.preview is not None:
-            fig, ax = plt.subplots(figsize=(4, 4))
+        if r.preview is not None and r.traces is not None:
+            fig, ax = _figure(figsize=(4, 4))
             plot_overlay(ax, r.preview, r.traces)
             figs.append(_png(fig))
-        fig, ax = plt.subplots(figsize=(4, 4))
-        plot_traces(ax, r.traces)
-        figs.append(_png(fig))
-        fig, ax = plt.subplots(figsize=(4, 4))
-        ro = r.roughness
-        plot_psd(ax, ro.frequency_per_nm, ro.psd["edge"].mean(axis=0), r.floor_nm3, r.model, title="edge PSD")
+        if r.traces is not None:
+            fig, ax = _figure(figsize=(4, 4))
+            plot_traces(ax, r.traces)
+            figs.append(_png(fig))
+        fig, ax = _figure(figsize=(4, 4))
+        e = a.edge_psd
+        plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, a.noise_floor_nm3, a.model, title="edge PSD")
         figs.append(_png(fig))
         parts.append("<div class='figs'>" + "".join(f"<img alt='figure' src='{u}'>" for u in figs) + "</div>")
     parts.append("<p class='note'>Extra frames or a higher dose cut image noise but can shrink or damage resist "
@@ -232,3 +227,36 @@ def write_report(meas, path, *, max_image_sections: int | None = None) -> Path:
     path = Path(path)
     path.write_text("\n".join(parts), encoding="utf-8")
     return path
+
+
+def _groups_section(groups, settings) -> str:
+    esc = html.escape
+    parts = [f"<h2>Groups side by side</h2><p class='note'>3&sigma; in nm. Frames: how many frames "
+             f"(averaged) would bring the noise fraction below {100 * settings.noise_share_target:.0f}% of the "
+             "variance, assuming noise variance falls as 1/frames. Lines: how many lines of this length give "
+             f"&plusmn;{100 * settings.precision_target:.0f}% (1 sd) on the unbiased edge sigma.</p>"
+             "<table><tr><th>group</th><th>images</th>"
+             "<th>LER 3&sigma; biased</th><th>LER 3&sigma; unbiased</th><th>LWR 3&sigma; biased</th>"
+             "<th>LWR 3&sigma; unbiased</th><th>noise fraction</th><th>xi (nm)</th><th>H</th>"
+             "<th>frames</th><th>lines</th></tr>"]
+    for g in groups:
+        v, m = g.summary, g.model
+        parts.append(f"<tr><td>{esc(g.name)}</td><td>{g.n_images}</td>"
+                     f"<td>{_fmt(3 * v.edge.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.edge.sigma_unbiased_nm)}</b>"
+                     f"</td><td>{_fmt(3 * v.width.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.width.sigma_unbiased_nm)}"
+                     f"</b></td><td>{_fmt(100 * v.edge.noise_fraction, 0)}%</td>"
+                     f"<td>{_fmt(m.correlation_length_nm if m else math.nan, 1)}</td>"
+                     f"<td>{_fmt(m.roughness_exponent if m else math.nan)}</td>"
+                     f"<td>{_fmt(g.advice.frames_for_noise_target, 1)}</td>"
+                     f"<td>{_fmt(g.advice.lines_for_precision_target, 0)}</td></tr>")
+    parts.append("</table>")
+    fig, ax = _figure(figsize=(6, 3))
+    x = np.arange(len(groups))
+    ax.bar(x - 0.2, [3 * g.summary.edge.sigma_biased_nm for g in groups], 0.4, color=_C["biased"], label="biased")
+    ax.bar(x + 0.2, [3 * g.summary.edge.sigma_unbiased_nm for g in groups], 0.4, color=_C["unbiased"],
+           label="unbiased")
+    ax.set_xticks(x, [g.name for g in groups])
+    ax.set_ylabel("LER 3$\\sigma$ (nm)")
+    ax.legend(frameon=False, fontsize=8)
+    parts.append(f"<div><img alt='groups' src='{_png(fig)}'></div>")
+    return "".join(parts)

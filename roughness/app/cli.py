@@ -1,0 +1,226 @@
+"""The ``quietedge`` command line: it only parses, checks and calls the Python API.
+
+``main(argv=None) -> int``; exit status :data:`EXIT_OK` (0) when everything was done,
+:data:`EXIT_SOME_FAILED` (3) when some images failed (the rest written), :data:`EXIT_USAGE` (2)
+for bad usage, including a bad setting.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+from dataclasses import fields, replace
+from pathlib import Path
+
+from edges.locate import ORIENTATIONS, POLARITIES
+from edges.profiles import PROFILE_MODELS
+from edges.render import SEMSettings
+
+from ..psd import DETRENDS, WINDOWS
+from .demo import run_demo
+from .runner import measure
+from .settings import DETECTORS, EXIT_OK, EXIT_SOME_FAILED, EXIT_USAGE, MeasureSettings, SettingsError
+from .simulate import simulate_images
+from .tables import summary_table
+
+__all__ = ["main", "build_parser"]
+
+# (option, SEMSettings field, type, help) -- every physical setting of the virtual SEM
+_SEM_OPTIONS = [
+    ("--pixel-size-nm", "pixel_size_nm", float, "pixel size along and across the lines, nm"),
+    ("--space-level", "space_level", float, "secondary-electron yield of the substrate (electrons per primary)"),
+    ("--line-level", "line_level", float, "secondary-electron yield of the line tops (electrons per primary)"),
+    ("--edge-peak", "edge_peak", float, "height of the bright edge peak before blur, yield units (0: none)"),
+    ("--edge-peak-width-nm", "edge_peak_width_nm", float, "standard deviation of the edge peak, nm"),
+    ("--edge-peak-offset-nm", "edge_peak_offset_nm", float, "distance of the edge peak inside the edge, nm"),
+    ("--blur-nm", "blur_nm", float, "standard deviation of the Gaussian beam, nm"),
+    ("--dose", "dose_per_pixel", float, "primary electrons per pixel"),
+    ("--gain", "gain", float, "grey levels per detected electron"),
+    ("--black-level", "black_level", float, "grey level added to every pixel"),
+    ("--read-noise", "read_noise", float, "additive Gaussian noise, standard deviation in grey levels"),
+    ("--scan-correlation", "scan_correlation", float, "AR(1) coefficient of the noise along the scan, 0 to <1"),
+    ("--gradient", "gradient", float, "relative brightness change from left to right border"),
+    ("--row-jitter", "row_jitter", float, "relative standard deviation of a per-row brightness factor"),
+    ("--tilt-deg", "tilt_deg", float, "tilt of the lines from the scan normal, degrees"),
+]
+
+
+def _add_simulate(sub):
+    d = SEMSettings()
+    p = sub.add_parser("simulate", help="write virtual SEM images of known roughness, with truth JSON",
+                       description="Render line/space SEM images with self-affine rough edges and "
+                                   "write each image beside a JSON record of its true edges.")
+    p.add_argument("--out", required=True, type=Path, help="output folder (created if missing)")
+    p.add_argument("--images", type=int, default=1, help="number of images (default 1)")
+    p.add_argument("--rows", type=int, default=1024, help="pixel rows, i.e. scan lines (default 1024)")
+    p.add_argument("--cols", type=int, default=1024, help="pixel columns (default 1024)")
+    p.add_argument("--pitch-nm", type=float, default=64.0, help="line pitch, nm (default 64)")
+    p.add_argument("--cd-nm", type=float, default=32.0, help="mean line width (CD), nm (default 32)")
+    p.add_argument("--sigma-nm", type=float, default=1.5,
+                   help="edge roughness sigma of the infinitely long edge, nm (default 1.5)")
+    p.add_argument("--correlation-length-nm", type=float, default=10.0,
+                   help="correlation length xi of the self-affine PSD, nm (default 10)")
+    p.add_argument("--roughness-exponent", type=float, default=0.6,
+                   help="roughness exponent H, 0 < H <= 2 (default 0.6)")
+    p.add_argument("--lr-correlation", type=float, default=0.0,
+                   help="correlation coefficient of the left and right edges of a line (default 0)")
+    for opt, name, typ, text in _SEM_OPTIONS:
+        p.add_argument(opt, dest=name, type=typ, default=getattr(d, name),
+                       help=f"{text} (default {getattr(d, name)})")
+    p.add_argument("--no-shot-noise", action="store_true", help="keep expected counts (no Poisson noise)")
+    p.add_argument("--polarity", choices=["bright", "dark"], default="bright",
+                   help="bright or dark lines on the substrate (default bright)")
+    p.add_argument("--horizontal", action="store_true", help="lines run along the scan (image transposed)")
+    p.add_argument("--bit-depth", type=int, choices=[8, 16, 32], default=16,
+                   help="8 or 16-bit integers, or 32 for float TIFF (default 16)")
+    p.add_argument("--format", choices=["tif", "png"], default="tif", help="file type (default tif)")
+    p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
+    p.add_argument("--prefix", default="sim", help="file name prefix (default 'sim')")
+
+
+def _run_simulate(args) -> int:
+    names = {f.name for f in fields(SEMSettings)}
+    given = {k: v for k, v in vars(args).items() if k in names}
+    given["shot_noise"] = not args.no_shot_noise
+    written = simulate_images(
+        args.out, n_images=args.images, n_rows=args.rows, n_cols=args.cols, pitch_nm=args.pitch_nm,
+        cd_nm=args.cd_nm, sigma_nm=args.sigma_nm, correlation_length_nm=args.correlation_length_nm,
+        roughness_exponent=args.roughness_exponent, lr_correlation=args.lr_correlation,
+        settings=SEMSettings(**given), file_format=args.format, bit_depth=args.bit_depth, prefix=args.prefix,
+        seed=args.seed)
+    for w in written:
+        print(f"{w.image_path}  ({w.n_edges} edges, realised edge sigma {w.realised_edge_sigma_nm:.3f} nm)")
+    return EXIT_OK
+
+
+def _add_measure_options(p):
+    d = MeasureSettings()
+    p.add_argument("--out", required=True, type=Path, help="output folder (created if missing)")
+    p.add_argument("--pixel-size", type=float, dest="pixel_size_nm", default=None, metavar="NM",
+                   help="pixel size in nm (default: from the TIFF resolution tags; required for PNG)")
+    p.add_argument("--settings", type=Path, default=None, metavar="TOML",
+                   help="a site recipe: TOML file whose keys are the setting names (the options below with "
+                        "underscores); command-line options override it")
+    p.add_argument("--detector", choices=DETECTORS, default=None,
+                   help=f"edge detector per row (default {d.detector}: profile fit with calibrated uncertainties)")
+    p.add_argument("--profile-model", choices=PROFILE_MODELS, default=None,
+                   help=f"edge-profile model of the fit (default {d.profile_model})")
+    p.add_argument("--window-px", type=int, default=None,
+                   help=f"fit window across each edge, odd number of pixels (default {d.window_px})")
+    p.add_argument("--detrend", choices=tuple(DETRENDS), default=None,
+                   help=f"removed from every trace before statistics (default {d.detrend})")
+    p.add_argument("--psd-window", choices=WINDOWS, default=None, help=f"taper of the PSD (default {d.psd_window})")
+    p.add_argument("--polarity", choices=POLARITIES, default=None,
+                   help="lines brighter or darker than the spaces (default auto = bright)")
+    p.add_argument("--orientation", choices=ORIENTATIONS, default=None, help="line direction in the image (default auto)")
+    p.add_argument("--threshold-level", type=float, default=None,
+                   help=f"level of the threshold detector, fraction 0-1 (default {d.threshold_level})")
+    p.add_argument("--resamples", type=int, dest="n_resamples", default=None,
+                   help=f"bootstrap resamples for confidence intervals (default {d.n_resamples})")
+    p.add_argument("--confidence", type=float, default=None,
+                   help=f"confidence level of the intervals (default {d.confidence})")
+    p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    p.add_argument("--resume", action="store_true",
+                   help="reuse the per-image results kept in OUT/per_image from an earlier or interrupted "
+                        "run with the same settings; only the missing images are measured")
+    p.add_argument("--no-report", action="store_true", help="write the tables only")
+    p.add_argument("--quiet", action="store_true", help="no progress bar and no summary table")
+
+
+def _add_measure(sub):
+    p = sub.add_parser("measure", help="measure LER/LWR with the image noise removed",
+                       description="Measure line-edge and line-width roughness on SEM images of line/space "
+                                   "patterns, with the image-noise share taken out.")
+    p.add_argument("images", nargs="+", help="image files (TIFF, PNG), folders or glob patterns")
+    _add_measure_options(p)
+    c = sub.add_parser("compare", help="measure groups of images (recipes, resists, doses) side by side",
+                       description="Measure several groups of images and compare their roughness.")
+    c.add_argument("--group", action="append", required=True, metavar="NAME=PATTERN",
+                   help="a group: its name, '=', and a file, folder or glob pattern; repeat per group")
+    _add_measure_options(c)
+    d = sub.add_parser("demo", help="run a small invented study end to end",
+                       description="Simulate a small fictional resist-qualification study at two electron doses, "
+                                   "measure it and write the report.")
+    d.add_argument("--out", type=Path, default=Path("quietedge-demo"), help="output folder (default ./quietedge-demo)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="quietedge",
+        description="Line-edge and line-width roughness from SEM images, with the image noise taken out.")
+    sub = parser.add_subparsers(dest="command", required=True)
+    _add_simulate(sub)
+    _add_measure(sub)
+    return parser
+
+
+def _settings(args) -> MeasureSettings:
+    given = {name: getattr(args, name) for name in MeasureSettings.field_names()
+             if getattr(args, name, None) is not None}
+    if args.settings is not None:
+        return MeasureSettings.from_toml(args.settings, **given)
+    return MeasureSettings(**given)
+
+
+def _print_headline(meas, out):
+    df = summary_table(meas)
+    cols = ["image", "n_lines", "ler_3sigma_biased_nm", "ler_3sigma_unbiased_nm", "lwr_3sigma_unbiased_nm",
+            "noise_fraction", "edge_correlation_length_nm", "status", "warnings"]
+    if len(df):
+        short = df[cols].copy()
+        short["image"] = [Path(n).name for n in short["image"]]
+        print(short.to_string(index=False, float_format=lambda x: f"{x:.2f}"))
+    if meas.overall is not None:
+        v = meas.overall.summary
+        print(f"\nall images: LER 3sigma unbiased {3 * v.edge.sigma_unbiased_nm:.2f} nm "
+              f"(biased {3 * v.edge.sigma_biased_nm:.2f}), LWR 3sigma unbiased "
+              f"{3 * v.width.sigma_unbiased_nm:.2f} nm, noise fraction {100 * v.edge.noise_fraction:.0f}% "
+              "of the edge variance")
+    print(f"results in {out}" + (f"; {len(meas.failures)} image(s) failed, see failures.csv" if meas.failures else ""))
+
+
+def _run_measure(args, groups=None) -> int:
+    settings = _settings(args)
+    if args.workers < 1:
+        raise SettingsError(f"--workers {args.workers}: must be >= 1")
+    meas = measure(None if groups else args.images, groups=groups, settings=settings, workers=args.workers,
+                   progress=not args.quiet, cache_dir=args.out / "per_image", resume=args.resume)
+    meas.write(args.out, report=not args.no_report)
+    if not args.quiet:
+        _print_headline(meas, args.out)
+    if not meas.images:
+        print("quietedge: no image could be measured", file=sys.stderr)
+    return EXIT_SOME_FAILED if meas.failures else EXIT_OK
+
+
+def _groups(specs) -> dict:
+    groups = {}
+    for spec in specs:
+        name, sep, pattern = spec.partition("=")
+        if not sep or not name or not pattern:
+            raise SettingsError(f"--group {spec!r}: expected NAME=PATTERN")
+        groups.setdefault(name, []).append(pattern)
+    return groups
+
+
+def main(argv=None) -> int:
+    """Run the command line; returns the exit status."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:   # argparse exits 2 on bad usage, 0 on --help
+        return int(exc.code or 0)
+    try:
+        if args.command == "simulate":
+            return _run_simulate(args)
+        if args.command == "measure":
+            return _run_measure(args)
+        if args.command == "compare":
+            return _run_measure(args, groups=_groups(args.group))
+        return run_demo(args.out)
+    except (ValueError, OSError) as exc:
+        print(f"quietedge {args.command}: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+
+
+if __name__ == "__main__":
+    sys.exit(main())

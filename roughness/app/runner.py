@@ -1,0 +1,300 @@
+"""The batch runner: load, detect, analyse, collect.  One bad image never stops a batch.
+
+``measure(images, ...)`` takes file paths, folders, glob patterns, arrays or
+:class:`edges.Micrograph` objects and returns a frozen :class:`Measurement`; the set and group
+statistics are reduced once, here, by :func:`roughness.analysis.analyse_group`; the tables and
+the report (``Measurement.write``) only project them.
+"""
+from __future__ import annotations
+
+import glob
+import hashlib
+import json
+import os
+import pickle
+from dataclasses import asdict, dataclass, replace
+from pathlib import Path
+
+import numpy as np
+
+from edges import EdgeTraces, Micrograph, MicrographError, fit_edges, read_micrograph, slope_edges, threshold_edges
+
+from ..analysis import GroupAnalysis, ImageAnalysis, analyse_group, analyse_image
+from .settings import MeasureSettings
+from .tables import write_outputs
+
+__all__ = ["ImageResult", "Measurement", "measure", "expand_inputs", "IMAGE_SUFFIXES"]
+
+IMAGE_SUFFIXES = (".tif", ".tiff", ".png")
+_PREVIEW_ROWS = 384
+
+
+@dataclass(frozen=True)
+class ImageResult:
+    """One measured image.
+
+    Attributes
+    ----------
+    name : str
+        File name (or ``array_NNN``).
+    group : str
+        Its group (``""`` without groups).
+    analysis : ImageAnalysis
+    traces : EdgeTraces or None
+        Kept for the report's figures for the first ``report_image_sections`` images only.
+    preview : (rows, cols) ndarray of float16 or None
+        The image (lines vertical, first rows) for those figures.
+    """
+
+    name: str
+    group: str
+    analysis: ImageAnalysis
+    traces: EdgeTraces | None = None
+    preview: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class Measurement:
+    """Results of :func:`measure`, computed once; tables and report are projections of it.
+
+    Attributes
+    ----------
+    images : tuple of ImageResult
+        In the order given.
+    failures : tuple of (name, reason)
+    settings : MeasureSettings
+    overall : GroupAnalysis or None
+        All measured images together (None when none was measured).
+    groups : tuple of GroupAnalysis
+        One per group when groups were given, in the order given; empty otherwise.
+    """
+
+    images: tuple
+    failures: tuple
+    settings: MeasureSettings
+    overall: GroupAnalysis | None
+    groups: tuple = ()
+
+    def write(self, out_dir, *, report: bool = True) -> Path:
+        """Write the output folder (tables, settings, report) and return its path."""
+        return write_outputs(self, Path(out_dir), report=report)
+
+
+def expand_inputs(items) -> list:
+    """Paths, folders (their TIFF/PNG files) and glob patterns to a sorted list; arrays and
+    Micrographs pass through.  A pattern or path that matches nothing is kept so that it is
+    reported as a failure (never silently dropped)."""
+    out = []
+    for item in items:
+        if isinstance(item, (np.ndarray, Micrograph)):
+            out.append(item)
+            continue
+        text = os.fspath(item)
+        p = Path(text)
+        if p.is_dir():
+            files = sorted(q for q in p.iterdir() if q.suffix.lower() in IMAGE_SUFFIXES)
+            out.extend(files if files else [p])
+        elif any(ch in text for ch in "*?["):
+            hits = sorted(Path(h) for h in glob.glob(text))
+            out.extend(hits if hits else [p])
+        else:
+            out.append(p)
+    return out
+
+
+def _name(item, k):
+    if isinstance(item, Micrograph):
+        return item.source if item.source != "<array>" else f"array_{k:03d}"
+    if isinstance(item, np.ndarray):
+        return f"array_{k:03d}"
+    return str(item)
+
+
+def _load(item, name, settings):
+    if isinstance(item, Micrograph):
+        m = item if settings.pixel_size_nm is None else replace(item, pixel_size_nm=settings.pixel_size_nm)
+        return replace(m, source=name)
+    if isinstance(item, np.ndarray):
+        if settings.pixel_size_nm is None:
+            raise ValueError(f"{name}: an array needs pixel_size_nm")
+        px = np.asarray(item, float)
+        if px.ndim != 2 or px.size == 0:
+            raise MicrographError(f"{name}: expected a non-empty 2-D array, got shape {px.shape}")
+        return Micrograph(pixels=px, pixel_size_nm=settings.pixel_size_nm, source=name)
+    return read_micrograph(item, pixel_size_nm=settings.pixel_size_nm)
+
+
+def detect_edges(micrograph: Micrograph, settings: MeasureSettings) -> EdgeTraces:
+    """The settings' detector on one micrograph."""
+    common = dict(window_px=settings.window_px, polarity=settings.polarity, orientation=settings.orientation)
+    if settings.detector == "model":
+        return fit_edges(micrograph, model=settings.profile_model, **common)
+    if settings.detector == "threshold":
+        return threshold_edges(micrograph, level=settings.threshold_level, **common)
+    return slope_edges(micrograph, **common)
+
+
+def _measure_one(item, k, settings: MeasureSettings, group: str = "") -> ImageResult:
+    name = _name(item, k)
+    m = _load(item, name, settings)
+    traces = detect_edges(m, settings)
+    analysis = analyse_image(traces, settings.analysis)
+    if k >= settings.report_image_sections:
+        return ImageResult(name=name, group=group, analysis=analysis)
+    pixels = m.pixels.T if traces.rotated else m.pixels
+    return ImageResult(name=name, group=group, analysis=analysis, traces=traces,
+                       preview=pixels[: min(pixels.shape[0], _PREVIEW_ROWS)].astype(np.float16))
+
+
+def _safe_measure(args):
+    item, k, settings, group = args
+    try:
+        return _measure_one(item, k, settings, group), None
+    except Exception as exc:       # one bad image never stops a batch: record why
+        reason = str(exc) if isinstance(exc, (ValueError, OSError)) else f"{type(exc).__name__}: {exc}"
+        return None, (_name(item, k), reason)
+
+
+class _Cache:
+    """One file per measured image, written as soon as it is done, so that an interrupted batch
+    loses nothing and ``resume`` measures only what is missing.  Keys hash the image name, its
+    group and every setting, so a changed recipe is measured afresh."""
+
+    def __init__(self, folder, resume):
+        self.folder = Path(folder)
+        self.folder.mkdir(parents=True, exist_ok=True)
+        self.resume = resume
+
+    def _path(self, job):
+        item, k, settings, group = job
+        text = json.dumps({"image": _name(item, k), "group": group, "settings": asdict(settings)}, sort_keys=True)
+        return self.folder / f"{hashlib.sha1(text.encode()).hexdigest()[:20]}.pkl"
+
+    def load(self, job):
+        path = self._path(job)
+        if self.resume and path.exists():
+            try:
+                with open(path, "rb") as fh:
+                    return pickle.load(fh)
+            except Exception:      # a truncated file from a killed run: measure again
+                return None
+        return None
+
+    def store(self, job, result):
+        path = self._path(job)
+        tmp = path.with_suffix(".tmp")
+        with open(tmp, "wb") as fh:
+            pickle.dump(result, fh, protocol=pickle.HIGHEST_PROTOCOL)
+        tmp.replace(path)          # atomic: a reader never sees half a result
+
+
+def measure(images=None, *, groups: dict | None = None, settings: MeasureSettings | None = None,
+            pixel_size_nm: float | None = None, workers: int = 1, progress: bool = False,
+            cache_dir=None, resume: bool = False) -> Measurement:
+    """Measure roughness on SEM images.
+
+    Parameters
+    ----------
+    images : path, folder, glob pattern, ndarray, Micrograph, or a sequence of them
+        The images (leave None when ``groups`` is given).
+    groups : dict, optional
+        ``{group name: [images...]}``: every image is measured and each group reduced.
+    settings : MeasureSettings, optional
+        The recipe (defaults otherwise).
+    pixel_size_nm : float, optional
+        Shorthand for ``replace(settings, pixel_size_nm=...)``: overrides the TIFF tags;
+        required for PNG files and arrays.
+    workers : int
+        Processes; 1 measures in this process.
+    progress : bool
+        Show a progress bar (tqdm) on stderr.
+    cache_dir : path, optional
+        Keep each image's result there as soon as it is measured.
+    resume : bool
+        With ``cache_dir``: reuse the images already measured with the same settings.
+
+    Returns
+    -------
+    Measurement
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from edges import SEMSettings
+    >>> from roughness.synth import simulate_line_space
+    >>> pixels, truth = simulate_line_space(n_rows=256, n_cols=320, rng=np.random.default_rng(0),
+    ...                                     settings=SEMSettings(dose_per_pixel=300))
+    >>> meas = measure([pixels], settings=MeasureSettings(pixel_size_nm=1.0, n_resamples=100))
+    >>> meas.overall.summary.n_lines, len(meas.failures)
+    (4, 0)
+    """
+    settings = settings or MeasureSettings()
+    if not isinstance(settings, MeasureSettings):
+        raise TypeError(f"settings: expected MeasureSettings, got {type(settings).__name__}")
+    if pixel_size_nm is not None:
+        settings = replace(settings, pixel_size_nm=pixel_size_nm)
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise ValueError(f"workers={workers!r}: must be an integer >= 1")
+    jobs = []
+    if groups:
+        for gname, items in groups.items():
+            if isinstance(items, (str, os.PathLike, np.ndarray, Micrograph)):
+                items = [items]
+            for item in expand_inputs(items):
+                jobs.append((item, len(jobs), settings, str(gname)))
+    else:
+        if images is None or isinstance(images, (str, os.PathLike, np.ndarray, Micrograph)):
+            images = [images] if images is not None else []
+        for item in expand_inputs(images):
+            jobs.append((item, len(jobs), settings, ""))
+    if not jobs:
+        raise ValueError("no images given")
+    results, failures = [], []
+    cache = _Cache(cache_dir, resume) if cache_dir is not None else None
+    todo = []
+    for job in jobs:
+        hit = cache.load(job) if cache else None
+        if hit is not None:
+            results.append(hit)
+        else:
+            todo.append(job)
+    bar = None
+    if progress:
+        from tqdm import tqdm
+
+        bar = tqdm(total=len(jobs), initial=len(jobs) - len(todo), unit="image", desc="measuring")
+
+    def done(job, res, fail):
+        if res is not None:
+            results.append(res)
+            if cache:
+                cache.store(job, res)
+        else:
+            failures.append(fail)
+        if bar:
+            bar.update()
+
+    try:
+        if workers > 1 and len(todo) > 1:
+            from concurrent.futures import ProcessPoolExecutor
+
+            with ProcessPoolExecutor(max_workers=workers) as pool:
+                for job, (res, fail) in zip(todo, pool.map(_safe_measure, todo)):
+                    done(job, res, fail)
+        else:
+            for job in todo:
+                done(job, *_safe_measure(job))
+    finally:
+        if bar:
+            bar.close()
+    order = {_name(j[0], j[1]): i for i, j in enumerate(jobs)}
+    results.sort(key=lambda r: order.get(r.name, 0))
+    options = settings.analysis
+    overall = analyse_group([r.analysis for r in results], options) if results else None
+    group_results = ()
+    if groups:
+        names = list(dict.fromkeys(str(g) for g in groups))
+        group_results = tuple(analyse_group([r.analysis for r in results if r.group == g], options, name=g)
+                              for g in names if any(r.group == g for r in results))
+    return Measurement(images=tuple(results), failures=tuple(failures), settings=settings, overall=overall,
+                       groups=group_results)

@@ -1,0 +1,112 @@
+"""One computation path: per-image analyses, their mergeable sums, and group reductions that
+depend on neither input order nor on holding traces."""
+import dataclasses
+import itertools
+
+import numpy as np
+import pytest
+
+from roughness.analysis import AnalysisOptions, analyse_group, analyse_image, common_grid
+from roughness.psd_model import fit_psd_model
+from roughness.stats import analyse_traces, summarize
+from roughness.synth import edge_pairs
+
+from .._traces import make_traces
+
+OPTIONS = AnalysisOptions(n_resamples=100, model_resamples=0)
+
+
+def _traces(rng, *, n_lines=6, n_rows=512, dy=1.0, noise_nm=0.3, source="img"):
+    left, right = edge_pairs(n_lines, n_rows, dy, sigma_nm=1.2, correlation_length_nm=8.0, roughness_exponent=0.7,
+                             rng=rng)
+    s = np.full(n_rows, noise_nm)
+    e = noise_nm * rng.standard_normal((2, n_lines, n_rows))
+    return make_traces(left + e[0], 30 + right + e[1], s, s, row_spacing_nm=dy, source=source)
+
+
+def test_group_of_one_grid_is_the_trace_weighted_mean(rng):
+    # Reference: the periodograms of all traces of both images, averaged directly.
+    t1, t2 = _traces(rng, source="a"), _traces(rng, n_lines=3, source="b")
+    g = analyse_group([analyse_image(t, OPTIONS) for t in (t1, t2)], OPTIONS)
+    r1, r2 = analyse_traces(t1), analyse_traces(t2)
+    direct = np.concatenate([r1.edge.psd_nm3, r2.edge.psd_nm3]).mean(axis=0)
+    np.testing.assert_allclose(g.edge_psd.psd_biased_nm3, direct, rtol=1e-12)
+    assert g.edge_psd.noise_floor_nm3 == pytest.approx(np.concatenate([r1.edge.floor_nm3, r2.edge.floor_nm3]).mean())
+    assert g.n_grids == 1 and g.edge_psd.n_traces == 18 and g.edge_psd.n_images == 2
+    # the pooled roughness is the summary of the lines of both images (the same resampling)
+    direct_summary = summarize([r1.lines, r2.lines], n_resamples=100, rng=np.random.default_rng(OPTIONS.seed))
+    assert g.summary == direct_summary
+
+
+def test_mixed_pixel_sizes_are_order_independent_and_none_is_dropped(rng):
+    # four images: two grids of pixel size 1 nm (512 and 256 rows) and two of 0.5 nm (1024 rows)
+    specs = [("a", 512, 1.0), ("b", 256, 1.0), ("c", 1024, 0.5), ("d", 1024, 0.5)]
+    images = [analyse_image(_traces(rng, n_rows=n, dy=dy, source=s), OPTIONS) for s, n, dy in specs]
+    groups = [analyse_group(list(order), OPTIONS) for order in itertools.permutations(images)]
+    first = groups[0]
+    assert first.n_grids == 3 and first.edge_psd.n_images == 4 and first.edge_psd.n_traces == 48
+    for g in groups[1:]:
+        np.testing.assert_array_equal(g.edge_psd.psd_biased_nm3, first.edge_psd.psd_biased_nm3)
+        np.testing.assert_equal(dataclasses.asdict(g.summary), dataclasses.asdict(first.summary))   # NaN == NaN
+        np.testing.assert_equal(dataclasses.asdict(g.model), dataclasses.asdict(first.model))
+    # the common grid: the coarsest resolution (256 nm lines: df = 1/256 per nm) up to the
+    # lowest Nyquist frequency (0.5 per nm)
+    f = common_grid([im.edge_psd for im in images])
+    assert f[1] == pytest.approx(1 / 256) and f[-1] == pytest.approx(0.5)
+
+
+def test_pooled_spectrum_of_mixed_grids_follows_the_roughness_model(rng):
+    # Reference: the analytic self-affine PSD (Palasantzas 1993) the edges were drawn from, plus
+    # the white floor 2 dy s^2 of each grid weighted by length.  Mean of 60 + 120 periodograms
+    # per bin: relative sd ~ 1/sqrt(180) = 7%; averaged over the 20 lowest fitted bins ~ 2%.
+    from roughness._selfaffine import self_affine_psd
+
+    a = analyse_image(_traces(rng, n_lines=30, n_rows=512, dy=1.0, noise_nm=0.0, source="a"), OPTIONS)
+    b = analyse_image(_traces(rng, n_lines=30, n_rows=2048, dy=0.5, noise_nm=0.0, source="b"), OPTIONS)
+    g = analyse_group([a, b], OPTIONS)
+    f = g.edge_psd.frequency_per_nm
+    sel = slice(4, 24)
+    model = self_affine_psd(f[sel], sigma_nm=1.2, correlation_length_nm=8.0, roughness_exponent=0.7)
+    ratio = g.edge_psd.psd_biased_nm3[sel] / model
+    assert np.mean(ratio) == pytest.approx(1.0, abs=0.08)
+
+
+def test_group_model_resamples_images_not_traces(rng):
+    images = [analyse_image(_traces(rng, source=f"img{k}"), OPTIONS) for k in range(6)]
+    options = dataclasses.replace(OPTIONS, model_resamples=20)
+    g = analyse_group(images, options)
+    # the point estimate is the Whittle fit of the length-weighted mean PSD
+    ref = fit_psd_model(g.edge_psd.frequency_per_nm, g.edge_psd.psd_biased_nm3[None, :], g.edge_psd.noise_floor_nm3,
+                        n_resamples=0)
+    assert g.model.correlation_length_nm == pytest.approx(ref.correlation_length_nm, rel=1e-3)
+    assert np.isfinite(g.model.correlation_length_se_nm)
+    few = analyse_group(images[:3], options)          # fewer than 5 images: no between-image se
+    assert np.isnan(few.model.correlation_length_se_nm)
+
+
+def test_image_analysis_is_frozen_and_typed(rng):
+    im = analyse_image(_traces(rng), OPTIONS)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        im.source = "other"
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        im.summary.edge.var_biased_nm2 = 0.0
+    e = im.summary.edge
+    assert e.var_unbiased_nm2 == pytest.approx(e.var_biased_nm2 - e.var_noise_nm2)
+    assert e.noise_fraction == pytest.approx(e.var_noise_nm2 / e.var_biased_nm2)
+    assert im.spectrum("width") is im.width_psd and im.edges.var_biased_nm2.shape == (12,)
+    with pytest.raises(ValueError, match="quantity='lwr'"):
+        im.spectrum("lwr")
+
+
+def test_an_image_without_usable_edges_is_refused_with_the_reason(rng):
+    t = _traces(rng)
+    t = dataclasses.replace(t, valid=np.zeros_like(t.valid))
+    with pytest.raises(ValueError, match="no edge could be measured .*too_many_invalid_rows"):
+        analyse_image(t, OPTIONS)
+
+
+@pytest.mark.parametrize("field,value", [("detrend", "cubic"), ("n_resamples", -1), ("confidence", 1.5),
+                                         ("psd_window", "hamming"), ("max_gap_rows", 2.5), ("seed", True)])
+def test_options_are_validated(field, value):
+    with pytest.raises(ValueError, match=f"{field}="):
+        AnalysisOptions(**{field: value})
