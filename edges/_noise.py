@@ -26,6 +26,10 @@ from scipy.optimize import minimize_scalar
 
 __all__ = ["NoiseModel", "estimate_noise", "position_variance"]
 
+#: Seed of the subsample of 1500 rows the scan correlation is estimated from (fixed so that the
+#: same image always gives the same uncertainties).
+_SUBSAMPLE_SEED = 0
+
 
 @dataclass(frozen=True)
 class NoiseModel:
@@ -157,7 +161,7 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     return float(c0), float(c1), model
 
 
-def _scan_correlation(win, res, ok, var, table, rng_seed=0):
+def _scan_correlation(win, res, ok, var, table):
     """Noise correlation along the scan, R_ij = gamma0 * a^|i-j| (first-order detector filter).
 
     Normalised residuals e = D^(-1/2) r of the unweighted fit have E[e e^T] = M R M^T with
@@ -171,7 +175,7 @@ def _scan_correlation(win, res, ok, var, table, rng_seed=0):
     full = np.flatnonzero(ok & (win.mask.sum(1) == width))
     if full.size < 200:
         return 1.0, 0.0, np.inf
-    sample = full if full.size <= 1500 else np.random.default_rng(rng_seed).choice(full, 1500, replace=False)
+    sample = full if full.size <= 1500 else np.random.default_rng(_SUBSAMPLE_SEED).choice(full, 1500, replace=False)
     sample.sort()
     mu, dmu = table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
     X = np.stack([-res.gain[sample, None] * dmu, np.ones_like(mu), mu], axis=2)

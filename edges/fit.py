@@ -276,7 +276,7 @@ def _safe_shift(centres, z, profile):
         return 0.0
 
 
-def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int = 31,
+def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window_px: int = 31,
               polarity: str = "auto", orientation: str = "auto", noise_correlation: str = "auto",
               max_iterations: int = 30, tolerance_px: float = 1e-4, chunk_rows: int = 4096,
               layout: LineLayout | None = None) -> EdgeTraces:
@@ -286,7 +286,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
     ----------
     micrograph : Micrograph
         Image with ``pixels`` of shape (n_rows, n_cols) and ``pixel_size_nm``.
-    model : {"template", "parametric", "step"}
+    profile_model : {"template", "parametric", "step"}
         Edge-profile model (see :mod:`edges.profiles`).  Positions refer to the half-level
         point of each edge's mean profile.
     window_px : int
@@ -329,8 +329,8 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
     >>> np.round(np.nanmean(traces.position_nm, axis=1)).tolist()   # no rim: the half-level point is the edge
     [40.0, 72.0, 104.0, 136.0]
     """
-    if model not in PROFILE_MODELS:
-        raise ValueError(f"model={model!r}: must be one of {PROFILE_MODELS}")
+    if profile_model not in PROFILE_MODELS:
+        raise ValueError(f"profile_model={profile_model!r}: must be one of {PROFILE_MODELS}")
     if noise_correlation not in ("auto", "none"):
         raise ValueError(f"noise_correlation={noise_correlation!r}: must be 'auto' or 'none'")
     if layout is None:
@@ -356,7 +356,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
                        sides=np.array([1 if layout.edges[i].side == "left" else -1 for i in idx]))
         solve = _Solve(max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
         coarse = _coarse_pass(frame, layout.guess_columns(np.arange(n_rows))[idx], solve)
-        shaped = _realign_pass(frame, coarse, _shape_pass(frame, coarse, model, solve), model, solve)
+        shaped = _realign_pass(frame, coarse, _shape_pass(frame, coarse, profile_model, solve), profile_model, solve)
         noise_pass = _noise_pass(shaped, noise_correlation)
         final = _weighted_pass(frame, coarse, shaped, noise_pass, solve)
         noise, res, win = noise_pass.noise, final.fit, shaped.windows
@@ -377,7 +377,7 @@ def fit_edges(micrograph: Micrograph, *, model: str = "template", window_px: int
         line_index=np.array([g.line_index for g in layout.edges]),
         side=np.array([g.side for g in layout.edges]),
         row_spacing_nm=m.pixel_size_nm, reduced_chi2=chi2, iterations=iters,
-        contrast_to_noise=cnr, edge_flags=flags.astype(str), detector="model", profile_model=model,
+        contrast_to_noise=cnr, edge_flags=flags.astype(str), detector="model", profile_model=profile_model,
         source=m.source, noise_model=noise, rotated=m.rotated, profile_shapes=tuple(shapes_all))
 
 

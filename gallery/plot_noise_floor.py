@@ -32,7 +32,7 @@ def main(out=Path(__file__).with_name("plot_noise_floor.png")):
               f"unbiased {edge.sigma_unbiased_nm:.3f} nm, noise fraction {100 * edge.noise_fraction:.0f}% "
               "of the variance")
         psd = image.edge_psd
-        plot_psd(ax, psd.frequency_per_nm, psd.mean_psd_nm3, psd.mean_floor_nm3, image.model,
+        plot_psd(ax, psd.frequency_per_nm, psd.mean_psd_nm3, psd.mean_floor_nm3, image.psd_model,
                  title=f"{dose} electrons per pixel")
     fig.savefig(out, dpi=90, bbox_inches="tight")
     return out

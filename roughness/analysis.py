@@ -230,7 +230,7 @@ class ImageAnalysis:
         Mergeable per-line variances (the resampling unit of groups).
     edge_psd, width_psd, centre_psd : SpectrumSums
         Mergeable PSD sums.
-    model : PSDModelFit or None
+    psd_model : PSDModelFit or None
         Self-affine fit of the edge PSD (None when it could not be fitted).
     model_sigma_finite_nm : float
         The model's expected sigma over this line length after detrending.
@@ -259,7 +259,7 @@ class ImageAnalysis:
     edge_psd: SpectrumSums
     width_psd: SpectrumSums
     centre_psd: SpectrumSums
-    model: PSDModelFit | None
+    psd_model: PSDModelFit | None
     model_sigma_finite_nm: float
     acf_correlation_length_nm: float
     noise_floor_nm3: float
@@ -400,7 +400,7 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
         source=traces.source, n_rows=rough.n_rows, row_spacing_nm=rough.row_spacing_nm, detector=traces.detector,
         profile_model=traces.profile_model, rotated=bool(traces.rotated), summary=summary, lines=rough.lines,
         edge_psd=_sums(rough.edge, length), width_psd=_sums(rough.width, length),
-        centre_psd=_sums(rough.centre, length), model=model, model_sigma_finite_nm=finite,
+        centre_psd=_sums(rough.centre, length), psd_model=model, model_sigma_finite_nm=finite,
         acf_correlation_length_nm=xi_acf, noise_floor_nm3=floor, plateau_nm3=plateau, plateau_sd_nm3=plateau_sd,
         floors_disagree=disagree, edges=edges, invalid_rows=n_invalid, bridged_rows=rough.bridged_rows,
         excluded_edges=int(np.count_nonzero(rough.edge_exclusion != "")),
@@ -478,7 +478,7 @@ class GroupAnalysis:
         Averaged PSDs on the common grid (None when no trace of that quantity exists).
     n_grids : int
         Distinct (rows, row spacing) grids combined; above 1 the PSDs were interpolated.
-    model : PSDModelFit or None
+    psd_model : PSDModelFit or None
         Self-affine fit of the pooled edge PSD; standard errors from resampling images (five
         images at least, otherwise NaN), or the image's own for a group of one.
     line_length_nm, row_spacing_nm : float
@@ -493,7 +493,7 @@ class GroupAnalysis:
     width_psd: PooledSpectrum | None
     centre_psd: PooledSpectrum | None
     n_grids: int
-    model: PSDModelFit | None
+    psd_model: PSDModelFit | None
     line_length_nm: float
     row_spacing_nm: float
     advice: SamplingAdvice
@@ -583,7 +583,7 @@ def analyse_group(images, options: AnalysisOptions = AnalysisOptions(), *, name:
     line_length = float(np.average([im.line_length_nm for im in images], weights=weights)) if weights.sum() else math.nan
     spacing = float(np.average([im.row_spacing_nm for im in images], weights=weights)) if weights.sum() else math.nan
     if len(images) == 1:
-        model = images[0].model
+        model = images[0].psd_model
     else:
         use = [im for im in images if im.edge_psd.n_traces]
         try:
@@ -598,5 +598,5 @@ def analyse_group(images, options: AnalysisOptions = AnalysisOptions(), *, name:
             model = None
     return GroupAnalysis(name=name, sources=tuple(im.source for im in images), summary=summary,
                          edge_psd=pooled["edge"], width_psd=pooled["width"], centre_psd=pooled["centre"],
-                         n_grids=n_grids, model=model, line_length_nm=line_length, row_spacing_nm=spacing,
+                         n_grids=n_grids, psd_model=model, line_length_nm=line_length, row_spacing_nm=spacing,
                          advice=_advice(summary, model, line_length, spacing, options))

@@ -176,7 +176,7 @@ def write_report(meas, path) -> Path:
     g = meas.overall
     if g is not None:
         parts.append("<h2>The whole set</h2>")
-        parts.append(_table(g.summary, g.model))
+        parts.append(_table(g.summary, g.psd_model))
         if g.n_grids > 1:
             parts.append(f"<p class='note'>The images have {g.n_grids} different row counts or pixel sizes: their "
                          "PSDs were interpolated onto the coarsest frequency resolution, up to the lowest Nyquist "
@@ -184,7 +184,7 @@ def write_report(meas, path) -> Path:
         if g.edge_psd is not None:
             fig, axes = _figure(figsize=(10, 3.6), ncols=2)
             d = g.edge_psd
-            plot_psd(axes[0], d.frequency_per_nm, d.psd_biased_nm3, d.noise_floor_nm3, g.model,
+            plot_psd(axes[0], d.frequency_per_nm, d.psd_biased_nm3, d.noise_floor_nm3, g.psd_model,
                      title=f"edges, {d.n_traces} traces")
             if g.width_psd is not None:
                 w = g.width_psd
@@ -207,7 +207,7 @@ def write_report(meas, path) -> Path:
         parts.append(f"<h2>{esc(r.name)}</h2>")
         for code, text in a.warnings:
             parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
-        parts.append(_table(a.summary, a.model, a.model_sigma_finite_nm))
+        parts.append(_table(a.summary, a.psd_model, a.model_sigma_finite_nm))
         figs = []
         if r.preview is not None and r.traces is not None:
             fig, ax = _figure(figsize=(4, 4))
@@ -219,7 +219,7 @@ def write_report(meas, path) -> Path:
             figs.append(_png(fig))
         fig, ax = _figure(figsize=(4, 4))
         e = a.edge_psd
-        plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, a.noise_floor_nm3, a.model, title="edge PSD")
+        plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, a.noise_floor_nm3, a.psd_model, title="edge PSD")
         figs.append(_png(fig))
         parts.append("<div class='figs'>" + "".join(f"<img alt='figure' src='{u}'>" for u in figs) + "</div>")
     parts.append("<p class='note'>Extra frames or a higher dose cut image noise but can shrink or damage resist "
@@ -240,7 +240,7 @@ def _groups_section(groups, settings) -> str:
              "<th>LWR 3&sigma; unbiased</th><th>noise fraction</th><th>xi (nm)</th><th>H</th>"
              "<th>frames</th><th>lines</th></tr>"]
     for g in groups:
-        v, m = g.summary, g.model
+        v, m = g.summary, g.psd_model
         parts.append(f"<tr><td>{esc(g.name)}</td><td>{g.n_images}</td>"
                      f"<td>{_fmt(3 * v.edge.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.edge.sigma_unbiased_nm)}</b>"
                      f"</td><td>{_fmt(3 * v.width.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.width.sigma_unbiased_nm)}"

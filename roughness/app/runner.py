@@ -128,7 +128,7 @@ def detect_edges(micrograph: Micrograph, settings: MeasureSettings) -> EdgeTrace
     """The settings' detector on one micrograph."""
     common = dict(window_px=settings.window_px, polarity=settings.polarity, orientation=settings.orientation)
     if settings.detector == "model":
-        return fit_edges(micrograph, model=settings.profile_model, **common)
+        return fit_edges(micrograph, profile_model=settings.profile_model, **common)
     if settings.detector == "threshold":
         return threshold_edges(micrograph, level=settings.threshold_level, **common)
     return slope_edges(micrograph, **common)

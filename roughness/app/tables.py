@@ -66,7 +66,7 @@ def summary_table(meas) -> pd.DataFrame:
     for r in meas.images:
         a = r.analysis
         row = {"image": r.name, "group": r.group}
-        row.update(_stat_columns(a.summary, a.model, a.advice, a.acf_correlation_length_nm))
+        row.update(_stat_columns(a.summary, a.psd_model, a.advice, a.acf_correlation_length_nm))
         row.update({
             "edge_sigma_model_finite_nm": a.model_sigma_finite_nm,
             "noise_floor_nm3": a.noise_floor_nm3, "plateau_nm3": a.plateau_nm3, "floors_disagree": a.floors_disagree,
@@ -84,7 +84,7 @@ def groups_table(meas) -> pd.DataFrame:
     rows = []
     for g in groups:
         row = {"group": g.name or "all", "n_images": g.n_images}
-        row.update(_stat_columns(g.summary, g.model, g.advice))
+        row.update(_stat_columns(g.summary, g.psd_model, g.advice))
         row["psd_grids"] = g.n_grids
         rows.append(row)
     return pd.DataFrame(rows, columns=GROUP_COLUMNS)
@@ -124,7 +124,7 @@ def psd_table(meas) -> pd.DataFrame:
         if s is None:
             continue
         f = s.frequency_per_nm
-        model = g.model.model_nm3(f) if (q == "edge" and g.model is not None) else np.full(f.size, np.nan)
+        model = g.psd_model.model_nm3(f) if (q == "edge" and g.psd_model is not None) else np.full(f.size, np.nan)
         parts.append(pd.DataFrame({"quantity": q, "frequency_per_nm": f, "psd_biased_nm3": s.psd_biased_nm3,
                                    "noise_floor_nm3": s.noise_floor_nm3, "psd_unbiased_nm3": s.psd_unbiased_nm3,
                                    "psd_model_nm3": model, "n_traces": s.n_traces, "n_images": s.n_images}))
@@ -162,7 +162,7 @@ def _versions():
     from importlib.metadata import PackageNotFoundError, version
 
     out = {"python": platform.python_version()}
-    for dist in ("quietedge", "numpy", "scipy", "scikit-image", "pandas", "matplotlib", "tifffile"):
+    for dist in ("quietedge", "numpy", "scipy", "pandas", "matplotlib", "tifffile", "imageio"):
         try:
             out[dist] = version(dist)
         except PackageNotFoundError:     # running from a source tree that is not installed

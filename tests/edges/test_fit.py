@@ -28,7 +28,7 @@ def _half_level_offset(settings):
 def test_noiseless_plain_step_positions_are_exact(rng, model):
     # a plain blurred step is in every model's family: error within 0.02 px of the truth
     m, truth, _ = line_space(rng, n_rows=400, n_cols=200, edge_peak=0, shot_noise=False)
-    et = fit_edges(m, model=model)
+    et = fit_edges(m, profile_model=model)
     err = et.position_nm - truth["edge_nm"]
     assert et.valid.all()
     assert np.max(np.abs(err)) < 0.02
@@ -37,7 +37,7 @@ def test_noiseless_plain_step_positions_are_exact(rng, model):
 @pytest.mark.parametrize("model", ["template", "parametric"])
 def test_noiseless_rimmed_edge_sits_at_its_half_level_point(rng, model):
     m, truth, s = line_space(rng, n_rows=400, n_cols=200, shot_noise=False)
-    et = fit_edges(m, model=model)
+    et = fit_edges(m, profile_model=model)
     ref = _half_level_offset(s)                     # left edges; right edges mirrored
     expect = truth["edge_nm"] + np.where(et.side == "left", ref, -ref)[:, None]
     assert np.max(np.abs(et.position_nm - expect)) < 0.02
@@ -54,7 +54,7 @@ def test_other_profile_gives_constant_offset_only(rng, model):
     s2 = replace(s, blur_nm=3.5)
     px2, _ = render_micrograph(truth["left_nm"], truth["right_nm"], n_cols=200, settings=s2, rng=rng)
     m = replace(m1, pixels=0.5 * (m1.pixels + px2))
-    err = fit_edges(m, model=model).position_nm - truth["edge_nm"]
+    err = fit_edges(m, profile_model=model).position_nm - truth["edge_nm"]
     assert np.max(np.std(err, axis=1)) < 0.02
 
 

@@ -48,7 +48,7 @@ def test_mixed_pixel_sizes_are_order_independent_and_none_is_dropped(rng):
     for g in groups[1:]:
         np.testing.assert_array_equal(g.edge_psd.psd_biased_nm3, first.edge_psd.psd_biased_nm3)
         np.testing.assert_equal(dataclasses.asdict(g.summary), dataclasses.asdict(first.summary))   # NaN == NaN
-        np.testing.assert_equal(dataclasses.asdict(g.model), dataclasses.asdict(first.model))
+        np.testing.assert_equal(dataclasses.asdict(g.psd_model), dataclasses.asdict(first.psd_model))
     # the common grid: the coarsest resolution (256 nm lines: df = 1/256 per nm) up to the
     # lowest Nyquist frequency (0.5 per nm)
     f = common_grid([im.edge_psd for im in images])
@@ -78,10 +78,10 @@ def test_group_model_resamples_images_not_traces(rng):
     # the point estimate is the Whittle fit of the length-weighted mean PSD
     ref = fit_psd_model(g.edge_psd.frequency_per_nm, g.edge_psd.psd_biased_nm3[None, :], g.edge_psd.noise_floor_nm3,
                         n_resamples=0)
-    assert g.model.correlation_length_nm == pytest.approx(ref.correlation_length_nm, rel=1e-3)
-    assert np.isfinite(g.model.correlation_length_se_nm)
+    assert g.psd_model.correlation_length_nm == pytest.approx(ref.correlation_length_nm, rel=1e-3)
+    assert np.isfinite(g.psd_model.correlation_length_se_nm)
     few = analyse_group(images[:3], options)          # fewer than 5 images: no between-image se
-    assert np.isnan(few.model.correlation_length_se_nm)
+    assert np.isnan(few.psd_model.correlation_length_se_nm)
 
 
 def test_image_analysis_is_frozen_and_typed(rng):

@@ -3,6 +3,9 @@ import math
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
 from scipy import signal
 
 from roughness.psd import bridge_gaps, cross_periodogram, detrend, periodogram
@@ -65,3 +68,11 @@ def test_bridge_gaps_interpolates_and_excludes_with_reasons():
     assert list(prep.usable) == [True, False, False]
     assert list(prep.exclusion) == ["", "gap_too_long", "too_many_invalid_rows"]
     assert prep.bridged_rows[0] == 2
+
+
+@settings(max_examples=60, deadline=None)
+@given(arrays(np.float64, st.integers(8, 300), elements=st.floats(-1e3, 1e3)), st.floats(0.05, 20.0))
+def test_parseval_holds_for_any_trace(z, dy):
+    # Parseval (boxcar): sum_k P1_k df = mean(z^2) for every trace, any length and spacing
+    f, p = periodogram(z, row_spacing_nm=dy, window="boxcar")
+    assert np.isclose(p.sum() * f[1], np.mean(z ** 2), rtol=1e-9, atol=1e-9)

@@ -217,6 +217,6 @@ def test_mixed_pixel_sizes_all_reach_psd_csv_whatever_the_order(tmp_path, rng):
     backward = measure(paths[::-1], settings=settings)
     assert forward.overall.edge_psd.n_images == 4 and forward.overall.n_grids == 3
     np.testing.assert_array_equal(forward.overall.edge_psd.psd_biased_nm3, backward.overall.edge_psd.psd_biased_nm3)
-    assert forward.overall.model.correlation_length_nm == backward.overall.model.correlation_length_nm
+    assert forward.overall.psd_model.correlation_length_nm == backward.overall.psd_model.correlation_length_nm
     psd = pd.read_csv(forward.write(tmp_path / "out", report=False) / "psd.csv")
     assert (psd.loc[psd["quantity"] == "edge", "n_images"] == 4).all()
