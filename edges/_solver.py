@@ -30,6 +30,17 @@ class RowFit:
         self.converged = np.zeros(n, bool)
         self.lag_sums = None                 # (n, n_lags + 1) sums of q_i var_i q_(i+l), q = w J_p
 
+    def replaced(self, rows, other: "RowFit") -> "RowFit":
+        """A copy with the results of ``rows`` (bool mask) taken from ``other`` (fitted on them)."""
+        out = RowFit(self.x0.size)
+        for name, value in vars(self).items():
+            if value is None:
+                continue
+            merged = value.copy()
+            merged[rows] = getattr(other, name)
+            setattr(out, name, merged)
+        return out
+
 
 def _sums(y, cols, w, table, edge, x0, with_slope=True):
     u = cols - x0[:, None]

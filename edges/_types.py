@@ -23,6 +23,7 @@ REASONS = (
     "low_contrast",     # the row's fitted step is too small or of the wrong sign
     "non_finite",       # NaN or infinite pixel in the window
     "too_close",        # neighbouring edge too near for a fit window of the minimum width
+    "unconstrained",    # the row's position uncertainty exceeds its window's reach: no information
 )
 REASON_CODES = {name: code for code, name in enumerate(REASONS)}
 

@@ -36,6 +36,9 @@ class EdgeWindows:
         A pixel of the row's window is NaN/infinite, or sits at the saturation level.
     first, last : (n,) ndarray of int
         First and last column of each row's window.
+    margin_px : (n,) ndarray
+        How far inside its window a position must lie: 1 px, or 0.5 px in windows that reach
+        less than 4 px on a side (fine pitch).
     """
 
     y: np.ndarray
@@ -46,33 +49,37 @@ class EdgeWindows:
     saturated: np.ndarray
     first: np.ndarray
     last: np.ndarray
+    margin_px: np.ndarray
 
-    def inside(self, x0_px, margin_px: float = 1.0) -> np.ndarray:
-        """Whether each row's position lies at least ``margin_px`` inside its window."""
-        return (x0_px > self.first + margin_px) & (x0_px < self.last - margin_px)
+    def inside(self, x0_px) -> np.ndarray:
+        """Whether each row's position lies inside its window by at least ``margin_px``."""
+        return (x0_px > self.first + self.margin_px) & (x0_px < self.last - self.margin_px)
 
 
-def cut_windows(pixels, centres_px, half_px, saturation=None) -> EdgeWindows:
-    """Windows of ``2 * half_px[e] + 1`` columns centred on ``centres_px[e, row]`` (rounded).
+def cut_windows(pixels, centres_px, reach_left_px, reach_right_px, saturation=None) -> EdgeWindows:
+    """Windows from ``centre - reach_left`` to ``centre + reach_right`` columns, the centre
+    ``centres_px[e, row]`` rounded.
 
     Parameters
     ----------
     pixels : (n_rows, n_cols) ndarray
     centres_px : (n_edges, n_rows) ndarray
         Window centre per edge and row, in columns.
-    half_px : (n_edges,) ndarray of int
-        Half width of each edge's window (pixels either side of the centre).
+    reach_left_px, reach_right_px : (n_edges,) ndarray of int
+        Pixels of each edge's window left and right of the centre.
     saturation : float, optional
         Grey level of detector saturation.
     """
     n_e, n_r = centres_px.shape
-    half_px = np.asarray(half_px, np.int64)
-    hmax = int(half_px.max())
+    left = np.asarray(reach_left_px, np.int64)
+    right = np.asarray(reach_right_px, np.int64)
+    hmax = int(max(left.max(), right.max()))
     offs = np.arange(-hmax, hmax + 1)
     start = np.rint(centres_px).astype(np.int64)
     col = start[:, :, None] + offs[None, None, :]
     n_cols = pixels.shape[1]
-    inside = (col >= 0) & (col < n_cols) & (np.abs(offs)[None, None, :] <= half_px[:, None, None])
+    inside = ((col >= 0) & (col < n_cols) & (offs[None, None, :] >= -left[:, None, None])
+              & (offs[None, None, :] <= right[:, None, None]))
     colc = np.clip(col, 0, n_cols - 1)
     rows = np.broadcast_to(np.arange(n_r)[None, :, None], col.shape)
     y = pixels[rows, colc].reshape(n_e * n_r, -1)
@@ -83,7 +90,8 @@ def cut_windows(pixels, centres_px, half_px, saturation=None) -> EdgeWindows:
     return EdgeWindows(y=np.where(finite, y, 0.0), cols=col.reshape(n_e * n_r, -1).astype(np.float64),
                        mask=mask & finite, edge=np.repeat(np.arange(n_e), n_r),
                        non_finite=np.any(~finite & mask, axis=1), saturated=saturated,
-                       first=start.reshape(-1) - half_px.repeat(n_r), last=start.reshape(-1) + half_px.repeat(n_r))
+                       first=start.reshape(-1) - left.repeat(n_r), last=start.reshape(-1) + right.repeat(n_r),
+                       margin_px=np.where(np.minimum(left, right) < 4, 0.5, 1.0).repeat(n_r))
 
 
 def saturation_level(m: Micrograph):
@@ -120,7 +128,7 @@ def centre_lines(x, ok, fallback):
 
 def rows_usable(fit, win: EdgeWindows) -> np.ndarray:
     """Rows of a solver result that can feed the next pass (converged, inside, clean)."""
-    return (fit.converged & win.inside(fit.x0) & np.isfinite(fit.x0) & (fit.n_used > 5)
+    return (fit.converged & win.inside(fit.x0) & np.isfinite(fit.x0) & (fit.n_used > 3)
             & ~win.saturated & ~win.non_finite)
 
 
@@ -135,4 +143,5 @@ def fit_reason_codes(fit, win: EdgeWindows, var_x, n_edges: int) -> np.ndarray:
     code[win.saturated] = REASON_CODES["saturated"]
     code[win.non_finite] = REASON_CODES["non_finite"]
     code[(code == 0) & ~(np.isfinite(var_x) & (var_x > 0))] = REASON_CODES["no_convergence"]
+    code[(code == 0) & (var_x > np.maximum(win.last - win.first, 1) ** 2 / 4)] = REASON_CODES["unconstrained"]
     return code

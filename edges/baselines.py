@@ -81,10 +81,11 @@ def _detect(micrograph, *, mode, level, window_px, n_plateau_px, polarity, orien
     reason[~fitted] = REASON_CODES["too_close"]
     cnr = np.full(n_all, np.nan)
     if idx.size:
-        half = np.array([layout.edges[i].half_window_px for i in idx])
+        reach_l = np.array([layout.edges[i].reach_left_px for i in idx])
+        reach_r = np.array([layout.edges[i].reach_right_px for i in idx])
         guess = layout.guess_columns(np.arange(n_rows))[idx]
         sat = saturation_level(m)
-        win = cut_windows(m.pixels, guess, half, sat)
+        win = cut_windows(m.pixels, guess, reach_l, reach_r, sat)
         for _ in range(2):   # second round on windows re-centred on the first round's line
             a, b, first, last = _plateaus(win, n_plateau_px)
             lo, hi = np.minimum(a, b), np.maximum(a, b)
@@ -92,7 +93,7 @@ def _detect(micrograph, *, mode, level, window_px, n_plateau_px, polarity, orien
             centre = np.rint(guess).ravel()
             x, step, found, _ = _crossing(win, lev, centre)
             guess = centre_lines(x.reshape(idx.size, n_rows), found.reshape(idx.size, n_rows), guess)
-            win = cut_windows(m.pixels, guess, half, sat)
+            win = cut_windows(m.pixels, guess, reach_l, reach_r, sat)
         a, b, first, last = _plateaus(win, n_plateau_px)
         lo, hi = np.minimum(a, b), np.maximum(a, b)
         lev = lo + level * (hi - lo)

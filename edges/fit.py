@@ -42,13 +42,16 @@ from ._types import REASON_CODES, EdgeTraces, Micrograph
 from ._windows import EdgeWindows, centre_lines, cut_windows, fit_reason_codes, rows_usable, saturation_level
 from .locate import LineLayout, locate_edges
 from .profiles import (PROFILE_MODELS, EdgeShape, ProfileTable, adjust_blur, fit_shape, fit_shift,
-                       half_level_offset, parametric_profile, smoothed_correction, tabulate)
+                       half_level_offset, is_physical, parametric_profile, smoothed_correction, tabulate)
 
 __all__ = ["fit_edges", "LOW_CONTRAST_CNR"]
 
 #: Below this contrast-to-noise (step height over noise sd at mid-step) an edge is flagged.
 LOW_CONTRAST_CNR = 3.0
 _BIN_PX = 0.25
+#: Narrowest reach (px a side) at which a profile shape with a rim or halo is fitted; below it
+#: the profile is a plain blurred step (fine pitch).
+_MIN_SHAPE_REACH_PX = 4
 
 
 @dataclass(frozen=True)
@@ -65,18 +68,32 @@ class _Frame:
     """What every pass needs of the image: pixels, windows' half widths, saturation, sides."""
 
     pixels: np.ndarray
-    half_px: np.ndarray
+    reach_left_px: np.ndarray
+    reach_right_px: np.ndarray
     saturation: float | None
     sides: np.ndarray          # +1 left edge, -1 right edge
     n_rows: int
 
     @property
     def n_edges(self) -> int:
-        return self.half_px.size
+        return self.reach_left_px.size
+
+    @property
+    def reach_px(self) -> np.ndarray:
+        """Each edge's smaller reach."""
+        return np.minimum(self.reach_left_px, self.reach_right_px)
+
+    @property
+    def half_max_px(self) -> int:
+        """The widest reach of any window (the extent of the window arrays)."""
+        return int(max(self.reach_left_px.max(), self.reach_right_px.max()))
 
     @property
     def table_range_px(self) -> int:
-        return 3 * int(self.half_px.max()) + 6
+        return 3 * self.half_max_px + 6
+
+    def windows(self, centres_px) -> EdgeWindows:
+        return cut_windows(self.pixels, centres_px, self.reach_left_px, self.reach_right_px, self.saturation)
 
 
 @dataclass(frozen=True)
@@ -98,6 +115,7 @@ class ShapedPass:
     shapes: tuple
     fit: RowFit
     ok: np.ndarray
+    shape_fallback: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -117,12 +135,16 @@ class WeightedPass:
 
 
 def _coarse_pass(frame: _Frame, guess_px, solve: _Solve) -> CoarsePass:
-    hmax = int(frame.half_px.max())
-    win = cut_windows(frame.pixels, guess_px, frame.half_px, frame.saturation)
-    step = [lambda u, derivative=False: parametric_profile(u, EdgeShape(2.0), derivative=derivative)]
+    win = frame.windows(guess_px)
+    # grid search inside the narrowest window: every 2 px up to 3 px from its ends, or every
+    # pixel in fine-pitch windows; a plain step of 2 px blur (at most half the reach)
+    reach = int(min(frame.reach_left_px.min(), frame.reach_right_px.min()))
+    blur = min(2.0, 0.5 * reach)
+    step = [lambda u, derivative=False: parametric_profile(u, EdgeShape(blur), derivative=derivative)]
     table = tabulate(step * frame.n_edges, frame.table_range_px)
+    grid = np.arange(-(reach - 3), reach - 2, 2) if reach > 4 else np.arange(-(reach - 1), reach)
     fit = solve_rows(win.y, win.cols, win.mask.astype(float), table, win.edge, guess_px.ravel(),
-                     grid_offsets_px=np.arange(-(hmax - 3), hmax - 2, 2), max_iterations=solve.max_iterations,
+                     grid_offsets_px=grid, max_iterations=solve.max_iterations,
                      tolerance_px=1e-2, chunk_rows=solve.chunk_rows)
     ok = np.isfinite(fit.x0) & win.inside(fit.x0) & (np.abs(fit.gain) > 0)
     shape2 = (frame.n_edges, frame.n_rows)
@@ -141,17 +163,18 @@ def _shape_pass(frame: _Frame, coarse: CoarsePass, model: str, solve: _Solve) ->
     """Shapes from the profile aligned on the smooth centre lines: blurred by the roughness (that
     blur is removed), but free of the distortion that self-alignment on a wrong (plain-step)
     model leaves, which can favour a step hidden under a bright rim."""
-    hmax = int(frame.half_px.max())
-    win = cut_windows(frame.pixels, coarse.centres_px, frame.half_px, frame.saturation)
+    hmax = frame.half_max_px
+    win = frame.windows(coarse.centres_px)
     centres = coarse.centres_px.ravel()
     ub, mean = _aligned_profiles(win, centres, coarse.fit.offset, coarse.fit.gain, coarse.ok, hmax)
-    funcs, shapes, shift = _shapes(ub, mean, model, frame.sides,
-                                   blur_change_px2=-np.nan_to_num(coarse.roughness_var_px2))
+    funcs, shapes, shift, fallback = _shapes(ub, mean, model, frame.sides, frame.reach_px,
+                                             blur_change_px2=-np.nan_to_num(coarse.roughness_var_px2))
     table = tabulate(funcs, frame.table_range_px)
     x_start = np.where(coarse.ok, coarse.fit.x0, centres) + shift[win.edge]
     fit = solve_rows(win.y, win.cols, win.mask.astype(float), table, win.edge, x_start,
                      max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px, chunk_rows=solve.chunk_rows)
-    return ShapedPass(windows=win, table=table, shapes=tuple(shapes), fit=fit, ok=rows_usable(fit, win))
+    return ShapedPass(windows=win, table=table, shapes=tuple(shapes), fit=fit, ok=rows_usable(fit, win),
+                      shape_fallback=fallback)
 
 
 def _realign_pass(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, model: str, solve: _Solve) -> ShapedPass:
@@ -159,7 +182,7 @@ def _realign_pass(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, model: 
     truncates the edge on one side when the edge wanders, and at low contrast-to-noise the fit
     then drifts toward the window centre: shrinkage); shape refitted on the self-aligned
     profile with the alignment scatter removed; unweighted fit with it."""
-    hmax = int(frame.half_px.max())
+    hmax = frame.half_max_px
     fit, ok, e_idx = shaped.fit, shaped.ok, shaped.windows.edge
     centres = coarse.centres_px.ravel()
     s2 = fit.rss / np.clip(fit.n_used - 3, 1, None)
@@ -167,17 +190,36 @@ def _realign_pass(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, model: 
         align_var = np.array([nanmean(np.where(ok, s2 / fit.info, np.nan)[e_idx == e])
                               for e in range(frame.n_edges)])
     own = np.where(ok, fit.x0, centres).reshape(frame.n_edges, frame.n_rows)
-    win = cut_windows(frame.pixels, own, frame.half_px, frame.saturation)
+    win = frame.windows(own)
     offset = np.where(ok, fit.offset, np.nan)
     ok = ok & np.isfinite(fit.x0)
     ub, mean = _aligned_profiles(win, fit.x0, offset, fit.gain, ok, hmax)
-    funcs, shapes, shift = _shapes(ub, mean, model, frame.sides, starts=shaped.shapes,
-                                   blur_change_px2=np.nan_to_num(align_var))
+    funcs, shapes, shift, fallback = _shapes(ub, mean, model, frame.sides, frame.reach_px, starts=shaped.shapes,
+                                             blur_change_px2=np.nan_to_num(align_var))
     table = tabulate(funcs, frame.table_range_px)
     x_start = np.where(ok, fit.x0, centres) + shift[e_idx]
     refit = solve_rows(win.y, win.cols, win.mask.astype(float), table, e_idx, x_start,
                        max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px, chunk_rows=solve.chunk_rows)
-    return ShapedPass(windows=win, table=table, shapes=tuple(shapes), fit=refit, ok=rows_usable(refit, win))
+    win, refit = _follow(frame, win, refit, table, solve)
+    return ShapedPass(windows=win, table=table, shapes=tuple(shapes), fit=refit, ok=rows_usable(refit, win),
+                      shape_fallback=fallback | shaped.shape_fallback)
+
+
+def _follow(frame: _Frame, win: EdgeWindows, fit: RowFit, table, solve: _Solve, rounds: int = 2):
+    """Rows whose converged position left their window get a window centred on it and are
+    refitted (up to ``rounds`` times): an edge that wanders more than the window's margin, as
+    at fine pitch where windows reach 2-3 px, is followed instead of lost."""
+    for _ in range(rounds):
+        moved = fit.converged & np.isfinite(fit.x0) & ~win.inside(fit.x0)
+        if not moved.any():
+            break
+        centre = np.where(moved, fit.x0, win.first + frame.reach_left_px[win.edge])
+        win = frame.windows(centre.reshape(frame.n_edges, frame.n_rows))
+        sub = solve_rows(win.y[moved], win.cols[moved], win.mask[moved].astype(float), table, win.edge[moved],
+                         fit.x0[moved], max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px,
+                         chunk_rows=solve.chunk_rows)
+        fit = fit.replaced(moved, sub)
+    return win, fit
 
 
 def _noise_pass(shaped: ShapedPass, noise_correlation: str) -> NoisePass:
@@ -189,7 +231,7 @@ def _noise_pass(shaped: ShapedPass, noise_correlation: str) -> NoisePass:
 def _weighted_pass(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, noise: NoisePass,
                    solve: _Solve) -> WeightedPass:
     win = shaped.windows
-    n_lags = 2 * int(frame.half_px.max()) if noise.noise.correlated else 0
+    n_lags = 2 * frame.half_max_px if noise.noise.correlated else 0
     x_start = np.where(shaped.ok, shaped.fit.x0, coarse.centres_px.ravel())
     fit = solve_rows(win.y, win.cols, win.mask / noise.pixel_variance, shaped.table, win.edge, x_start,
                      max_iterations=solve.max_iterations, tolerance_px=solve.tolerance_px,
@@ -218,55 +260,69 @@ def _aligned_profiles(win, x0, offset, gain, ok, hmax):
     return centres, mean
 
 
-def _shapes(centres, mean, kind, groups, starts=None, blur_change_px2=None):
+def _shapes(centres, mean, kind, groups, reach_px, starts=None, blur_change_px2=None):
     """One shape per group of edges (left: +1, right: -1), fitted on the group's pooled profile.
 
     The beam and material are common to the image, so pooling the edges of one side cuts the
     noise of the shape; each edge then gets only its own shift of the step centre, with the
-    shape fixed (a free peak beside a free step centre trades one against the other).
-    Returns per-edge callables for the table, per-edge shapes and per-edge shifts.
+    shape fixed (a free peak beside a free step centre trades one against the other).  A peak
+    must lie inside the narrowest window of the group (``reach_px``: each edge's smaller
+    reach); a shape pinned at a physical bound falls back to a plain blurred step.
+    Returns per-edge callables for the table, per-edge shapes, per-edge shifts and whether
+    the edge's shape fell back.
     """
     n_e = mean.shape[0]
     funcs, shapes, shifts = [None] * n_e, [None] * n_e, np.zeros(n_e)
+    fallback = np.zeros(n_e, bool)
     for g in np.unique(groups):
         members = np.flatnonzero(groups == g)
         pooled = nanmean(mean[members], axis=0) if members.size else None
         start = None if starts is None else starts[members[0]]
+        max_off = float(np.min(reach_px[members])) - 0.5
+        # windows reaching less than _MIN_SHAPE_REACH_PX a side hold too little profile beside
+        # the edge to tell a rim or halo from the neighbouring edge: a blurred step only
+        narrow = max_off + 0.5 < _MIN_SHAPE_REACH_PX
+        shape_kind = "step" if kind == "step" or narrow else "parametric"
         try:
-            fitted, _ = fit_shape(centres, pooled, kind="step" if kind == "step" else "parametric", start=start,
-                                  peak_side=int(g))
+            fitted, _ = fit_shape(centres, pooled, kind=shape_kind, start=start, peak_side=int(g),
+                                  max_peak_offset_px=max_off)
             own = np.zeros(members.size)
             for _ in range(2):   # re-pool with each edge moved onto the common reference
                 prof = lambda u, sh=fitted: parametric_profile(u, sh)
                 own = np.array([_safe_shift(centres, mean[e], prof) for e in members])
                 pooled = nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
                                      for e, sh_ in zip(members, own)], axis=0)
-                fitted, extra = fit_shape(centres, pooled, kind="step" if kind == "step" else "parametric",
-                                          start=fitted, peak_side=int(g))
+                fitted, extra = fit_shape(centres, pooled, kind=shape_kind, start=fitted, peak_side=int(g),
+                                          max_peak_offset_px=max_off)
                 own = own + extra
+            if not is_physical(fitted, max_peak_offset_px=max_off):
+                fitted, extra = fit_shape(centres, pooled, kind="step")
+                own, fallback[members] = own + extra, True
         except (RuntimeError, ValueError):
             fitted, own = (start or EdgeShape(2.0)), np.zeros(members.size)
+            fallback[members] = start is None
         shape = fitted
         if blur_change_px2 is not None:
             shape = adjust_blur(fitted, float(nanmean(blur_change_px2[members])))
         corr = None
-        if kind == "template":
+        if kind == "template" and not narrow:
             aligned = nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
                                   for e, sh_ in zip(members, own)], axis=0)
             mu = parametric_profile(centres, fitted)
             good = np.isfinite(aligned)
-            gain, offset = np.polyfit(mu[good], aligned[good], 1)   # the pooled z is not exactly 0..1
-            corr = smoothed_correction(centres, (aligned - offset) / gain - mu)
+            if good.sum() >= 8 and np.ptp(mu[good]) > 0.1:      # enough of the profile to correct
+                gain, offset = np.polyfit(mu[good], aligned[good], 1)   # the pooled z is not exactly 0..1
+                corr = smoothed_correction(centres, (aligned - offset) / gain - mu)
         if corr is None:
             full = lambda u, derivative=False, s_=shape: parametric_profile(u, s_, derivative=derivative)
         else:
             full = (lambda u, derivative=False, s_=shape, c=corr:
                     parametric_profile(u, s_, derivative=derivative) + c(u, derivative=derivative))
-        ref = half_level_offset(full)
+        ref = half_level_offset(full, reach_px=min(12.0, max_off + 1.0))   # the crossing inside the window
         for e, sh_ in zip(members, own):
             funcs[e] = lambda u, derivative=False, f=full, r=ref: f(u + r, derivative=derivative)
             shapes[e], shifts[e] = shape, sh_ + ref
-    return funcs, shapes, shifts
+    return funcs, shapes, shifts, fallback
 
 
 def _safe_shift(centres, z, profile):
@@ -351,7 +407,8 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
     noise = NoiseModel()
     shapes_all = [None] * n_all
     if idx.size:
-        frame = _Frame(pixels=m.pixels, half_px=np.array([layout.edges[i].half_window_px for i in idx]),
+        frame = _Frame(pixels=m.pixels, reach_left_px=np.array([layout.edges[i].reach_left_px for i in idx]),
+                       reach_right_px=np.array([layout.edges[i].reach_right_px for i in idx]),
                        saturation=saturation_level(m), n_rows=n_rows,
                        sides=np.array([1 if layout.edges[i].side == "left" else -1 for i in idx]))
         solve = _Solve(max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
@@ -370,6 +427,8 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
         reason[idx] = code.reshape(idx.size, n_rows)
         cnr[idx] = _edge_cnr(res, valid, win.edge, idx.size, noise)
         flags[idx[~(cnr[idx] >= LOW_CONTRAST_CNR)]] = "low_contrast"
+        for k in np.flatnonzero(shaped.shape_fallback):
+            flags[idx[k]] = ",".join(f for f in (flags[idx[k]], "shape_fallback") if f)
         for k, i in enumerate(idx):
             shapes_all[i] = shaped.shapes[k]
     return EdgeTraces(

@@ -18,8 +18,10 @@ from ._types import Micrograph
 __all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX", "POLARITIES",
            "ORIENTATIONS"]
 
-#: Smallest half-width of a fit window (pixels either side of the edge) that is still fitted.
-MIN_HALF_WINDOW_PX = 4
+#: Smallest reach of a fit window on either side of an edge (pixels) that is still fitted: with
+#: 2 px a side (5 pixels for position, gain and offset) edges 4 px apart, pitches of 8 px, are
+#: measured.
+MIN_HALF_WINDOW_PX = 2
 #: Line polarities: "auto" (bright lines), "bright", "dark".
 POLARITIES = ("auto", "bright", "dark")
 #: Line directions: "auto", "vertical", "horizontal" (horizontal images are transposed).
@@ -44,20 +46,27 @@ class EdgeGuess:
         ``"left"`` or ``"right"`` side of its line.
     rising : bool
         Grey level increases to the right across the edge.
-    half_window_px : int
-        Pixels either side of the edge that belong to this edge alone (at most the requested
-        half window).
+    reach_left_px, reach_right_px : int
+        Pixels to the left and to the right of the edge that belong to this edge alone: half the
+        distance to the neighbouring edge on that side (the local pitch and CD), or what the
+        border leaves, at most half the requested window.
     flag : str
-        ``""`` or ``"too_close"`` when the neighbouring edge leaves less than
-        :data:`MIN_HALF_WINDOW_PX` for the window.
+        ``""`` or ``"too_close"`` when a neighbour leaves less than
+        :data:`MIN_HALF_WINDOW_PX` on a side.
     """
 
     column_px: float
     line_index: int
     side: str
     rising: bool
-    half_window_px: int
+    reach_left_px: int
+    reach_right_px: int
     flag: str = ""
+
+    @property
+    def half_window_px(self) -> int:
+        """The larger reach (the extent of the window array)."""
+        return max(self.reach_left_px, self.reach_right_px)
 
 
 @dataclass(frozen=True)
@@ -164,6 +173,19 @@ def _aligned_profile(px: np.ndarray, tilt: float, ref: float) -> np.ndarray:
     return out
 
 
+def _period_px(profile: np.ndarray) -> float:
+    """The dominant period of a profile (the pitch), from the highest peak of its power spectrum
+    beyond the two lowest frequencies; infinite for a profile too short to tell."""
+    z = profile - profile.mean()
+    if z.size < 8:
+        return math.inf
+    power = np.abs(np.fft.rfft(z * np.hanning(z.size))) ** 2
+    if power.size < 4:
+        return math.inf
+    k = 2 + int(np.argmax(power[2:]))
+    return z.size / k
+
+
 def _crossings(profile: np.ndarray, level: float) -> list[tuple[float, bool]]:
     """Subpixel columns where the profile crosses ``level`` and whether it rises there."""
     d = profile - level
@@ -184,8 +206,8 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     orientation : {"auto", "vertical", "horizontal"}
         Line direction in the image; horizontal images are transposed (``rotated=True``).
     window_px : int
-        Requested fit window (odd, >= 2 * MIN_HALF_WINDOW_PX + 1); sets how far from the border
-        an edge must lie and which edges are too close to their neighbours.
+        Largest fit window (odd, >= 2 * MIN_HALF_WINDOW_PX + 1); each edge's window is narrowed
+        to half the distance to its neighbours on either side.
 
     Raises
     ------
@@ -232,7 +254,8 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     light = profile.copy()
     light[finite] = ndimage.gaussian_filter1d(profile[finite], 1.0)
     heavy = light.copy()
-    heavy[finite] = ndimage.gaussian_filter1d(profile[finite], 3.0)
+    # smoothing that keeps the lines: 3 px, or an eighth of the pitch at fine pitch
+    heavy[finite] = ndimage.gaussian_filter1d(profile[finite], min(3.0, max(0.7, _period_px(light[finite]) / 8)))
     # profile noise: pixel noise from row-to-row differences, averaged over the rows
     pix_sd = np.median(np.abs(np.diff(px[:, ::4], axis=0))) / (0.6745 * math.sqrt(2))
     prof_sd = pix_sd / math.sqrt(n_rows)
@@ -258,13 +281,14 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     # a line starts where the profile enters the line level: rising for bright lines
     starts_rising = polarity == "bright"
     half_req = window_px // 2
-    margin = half_req + 2 + abs(tilt) * 0.5 * n_rows
+    drift = abs(tilt) * 0.5 * n_rows          # how far a tilted edge moves from its reference column
+    border = MIN_HALF_WINDOW_PX + 1 + drift   # a whole line needs this much room at the border
     lines, dropped, i = [], 0, 0
     while i < len(crossings):
         col, rising = crossings[i]
         if rising == starts_rising and i + 1 < len(crossings) and crossings[i + 1][1] != starts_rising:
             left, right = col, crossings[i + 1][0]
-            if left - margin < 0 or right + margin > n_cols - 1:
+            if left - border < 0 or right + border > n_cols - 1:
                 dropped += 1
             else:
                 lines.append((left, right))
@@ -277,18 +301,23 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
         raise LocateError(f"{micrograph.source}: no whole line inside the image "
                           f"({dropped} cut by the border)")
     cols = [c for pair in lines for c in pair]
+    every = sorted(x for x, _ in crossings)   # kept edges and those of dropped partial lines
     guesses = []
     for k, c in enumerate(cols):
-        gaps = [abs(c - cols[j]) for j in (k - 1, k + 1) if 0 <= j < len(cols)]
-        # outer neighbours beyond the kept lines (dropped partial lines) also bound the window
-        others = [abs(c - x) for x, _ in crossings if abs(c - x) > 0.5]
-        near = min(gaps + others) if (gaps or others) else np.inf
-        half = int(min(half_req, math.floor(0.5 * near)))
+        before = [c - x for x in every if x < c - 0.5]
+        after = [x - c for x in every if x > c + 0.5]
+        # half the distance to the neighbouring edge on each side (the local pitch and CD), or
+        # what the border leaves beyond the tilt drift; at most half the requested window
+        room_left = 0.5 * min(before) if before else c - drift - 1
+        room_right = 0.5 * min(after) if after else (n_cols - 1) - c - drift - 1
+        reach_l = int(min(half_req, math.floor(room_left + 0.5)))   # windows may share a midpoint pixel
+        reach_r = int(min(half_req, math.floor(room_right + 0.5)))
         side = "left" if k % 2 == 0 else "right"
         rising = (side == "left") == (polarity == "bright")
+        close = min(reach_l, reach_r) < MIN_HALF_WINDOW_PX
         guesses.append(EdgeGuess(column_px=float(c), line_index=k // 2, side=side, rising=rising,
-                                 half_window_px=max(half, 0),
-                                 flag="too_close" if half < MIN_HALF_WINDOW_PX else ""))
+                                 reach_left_px=max(reach_l, 0), reach_right_px=max(reach_r, 0),
+                                 flag="too_close" if close else ""))
     micrograph = replace(micrograph, polarity=polarity)
     return LineLayout(micrograph=micrograph, edges=tuple(guesses), tilt_px_per_row=tilt,
                       reference_row=ref, dropped_partial_lines=dropped, profile=profile,

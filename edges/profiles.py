@@ -31,7 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage, optimize, special
 
-__all__ = ["PROFILE_MODELS", "EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "fit_shift", "tabulate",
+__all__ = ["PROFILE_MODELS", "PEAK_HEIGHT_RANGE", "is_physical", "EdgeShape", "ProfileTable", "parametric_profile", "fit_shape", "fit_shift", "tabulate",
            "adjust_blur", "half_level_offset"]
 
 #: Profile models of the fit: the image's own mean profile (``template``), the parametric
@@ -137,7 +137,29 @@ def _profile_model(uu, x0, a, b, s, h=0.0, d=0.0, w=1.0):
     return a + b * parametric_profile(uu - x0, EdgeShape(s, h, d, w))
 
 
-def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int = 0) -> tuple[EdgeShape, float]:
+#: Physical range of an edge peak's height relative to the step: a bright bloom up to three
+#: step heights, a dark halo down to one (common practice for secondary-electron profiles).
+PEAK_HEIGHT_RANGE = (-1.0, 3.0)
+
+
+def is_physical(shape: EdgeShape, *, max_peak_offset_px: float = np.inf) -> bool:
+    """Whether a fitted shape lies strictly inside the physical bounds (not pinned at one).
+
+    A fit pinned at a bound has taken a form no SEM edge has (a peak outside the window, a
+    dip that swallows the neighbouring edge); the caller falls back to a plain step.
+    """
+    tol = 1e-3
+    lo, hi = PEAK_HEIGHT_RANGE
+    if not (0.2 + tol < shape.blur_px < 5 - tol):
+        return False
+    if shape.peak_height == 0.0:
+        return True
+    return bool(lo + tol < shape.peak_height < hi - tol and abs(shape.peak_offset_px) < max_peak_offset_px - tol
+                and 0.3 + tol < shape.peak_width_px < min(8.0, max_peak_offset_px + 1.0) - tol)
+
+
+def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int = 0,
+              max_peak_offset_px: float = np.inf) -> tuple[EdgeShape, float]:
     """Fit a shape to an aligned, normalised mean profile z(u) (step from ~0 to ~1).
 
     Returns the shape and the shift of its step centre from u = 0 (to add to positions).
@@ -147,6 +169,8 @@ def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int
     the step hidden under the rim.  ``peak_side`` (+1 or -1, 0 for free) keeps the peak on the
     side of the step where the line lies (+1 for a line's left edge, whose line is at larger
     columns), which rules that optimum out.  With ``start`` the fit starts there only.
+    The peak stays within ``max_peak_offset_px`` of the step (inside the fit window) and its
+    height within :data:`PEAK_HEIGHT_RANGE`; :func:`is_physical` tells whether a bound was hit.
     """
     ok = np.isfinite(z)
     u, z = u[ok], z[ok]
@@ -173,9 +197,10 @@ def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int
         if kind == "step":
             lower, upper = step_lo, step_hi
         else:
-            reach = 3 * p0[3] + 8
-            lower = step_lo + [-5, 0.0 if peak_side > 0 else -reach, 0.3]
-            upper = step_hi + [5, 0.0 if peak_side < 0 else reach, 8]
+            reach = min(3 * p0[3] + 8, max_peak_offset_px)
+            width = min(8.0, max_peak_offset_px + 1.0)
+            lower = step_lo + [PEAK_HEIGHT_RANGE[0], 0.0 if peak_side > 0 else -reach, 0.3]
+            upper = step_hi + [PEAK_HEIGHT_RANGE[1], 0.0 if peak_side < 0 else reach, width]
         p0 = np.clip(p0, np.add(lower, 1e-9), np.subtract(upper, 1e-9))
         try:
             popt, _ = optimize.curve_fit(_profile_model, u, z, p0=p0, bounds=(lower, upper), maxfev=4000)

@@ -63,9 +63,10 @@ def main():
     t_loc, lay = _best(lambda: locate_edges(m))
     t_fit, et = _best(lambda: fit_edges(m, layout=lay), repeat=2)
     t_thr, _ = _best(lambda: threshold_edges(m, layout=lay))
-    half = np.array([e.half_window_px for e in lay.edges])
+    reach_l = np.array([e.reach_left_px for e in lay.edges])
+    reach_r = np.array([e.reach_right_px for e in lay.edges])
     guess = lay.guess_columns(np.arange(1024))
-    t_win, win = _best(lambda: cut_windows(m.pixels, guess, half))
+    t_win, win = _best(lambda: cut_windows(m.pixels, guess, reach_l, reach_r))
     shape = EdgeShape(2.0, 0.8, 2.0, 2.5)
     # one pass against curve_fit, same rows and start
     one = tabulate([lambda u, derivative=False: parametric_profile(u, shape, derivative=derivative)], 50)

@@ -206,3 +206,21 @@ def test_no_shrinkage_toward_the_guess_at_cnr_2(rng):
     fit = fit_edges(m)
     assert abs(slope(fit) - 1) < 0.1
     assert slope(threshold_edges(m)) < 0.5
+
+
+def test_pitch_of_eight_pixels_is_measured_on_every_whole_line(rng):
+    # CD 4 px, space 4 px: windows of 2 px a side, plain-step profile; at 1000 counts per pixel the
+    # noise scatter is ~0.19 px and every row of every whole line must be measured
+    m, truth, _ = line_space(rng, n_rows=256, n_cols=128, pitch_nm=8.0, cd_nm=4.0, sigma_nm=0.3, xi_nm=8.0,
+                             blur_nm=0.8, edge_peak=0, dose_per_pixel=1000)
+    et = fit_edges(m)
+    assert et.position_nm.shape == truth["edge_nm"].shape
+    assert et.valid.mean() > 0.99
+    err = np.where(et.valid, et.position_nm - truth["edge_nm"], np.nan)
+    # no edge off by a pixel: per-edge mean error is the (common) profile offset, < 0.1 px here
+    assert np.nanmax(np.abs(np.nanmean(err, axis=1))) < 0.1
+    # scatter about each edge's mean against the fit's own uncertainty: 7680 rows, so the ratio
+    # of sds has sampling sd ~1%; the linearised covariance is allowed 15%
+    scatter = np.nanstd(err - np.nanmean(err, axis=1, keepdims=True))
+    predicted = math.sqrt(np.nanmean(np.where(et.valid, et.sigma_nm ** 2, np.nan)))
+    assert scatter == pytest.approx(predicted, rel=0.15)

@@ -55,9 +55,17 @@ def test_partial_lines_at_the_border_are_dropped(rng):
     assert len(lay.edges) == truth["edge_nm"].shape[0] - 2
 
 
-def test_dense_lines_are_flagged_not_fitted(rng):
-    m, _, _ = line_space(rng, n_rows=64, n_cols=120, pitch_nm=10.0, cd_nm=5.0, sigma_nm=0.2,
-                         blur_nm=0.8, edge_peak=0, dose_per_pixel=400)
+def test_pitch_of_eight_pixels_is_located_and_denser_is_flagged(rng):
+    # pitch 8 px, CD 4 px: every edge has 2 px of its own on either side (MIN_HALF_WINDOW_PX)
+    m, truth, _ = line_space(rng, n_rows=64, n_cols=120, pitch_nm=8.0, cd_nm=4.0, sigma_nm=0.2,
+                             blur_nm=0.8, edge_peak=0, dose_per_pixel=400)
+    lay = locate_edges(m)
+    assert len(lay.edges) == truth["edge_nm"].shape[0] - 2 * lay.dropped_partial_lines
+    assert lay.edges and not any(e.flag for e in lay.edges)
+    assert all(min(e.reach_left_px, e.reach_right_px) == 2 for e in lay.edges)
+    # pitch 5 px: edges 2.5 px apart leave 1 px a side, too little for a position, gain and offset
+    m, _, _ = line_space(rng, n_rows=64, n_cols=120, pitch_nm=5.0, cd_nm=2.5, sigma_nm=0.1,
+                         blur_nm=0.5, edge_peak=0, dose_per_pixel=400)
     lay = locate_edges(m)
     assert lay.edges and all(e.flag == "too_close" for e in lay.edges)
 

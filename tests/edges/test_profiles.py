@@ -47,3 +47,20 @@ def test_half_level_point_of_a_plain_step_is_its_centre_and_a_rim_moves_it():
     # by definition the profile sits half-way between its plateaus (0 and 1) there
     assert parametric_profile(np.array([r]), rim)[0] == pytest.approx(0.5, abs=1e-6)
     assert r != pytest.approx(0.0, abs=0.05)
+
+
+def test_shapes_pinned_at_a_physical_bound_are_rejected():
+    from edges.profiles import PEAK_HEIGHT_RANGE, fit_shape, is_physical
+    assert is_physical(EdgeShape(1.5)) and all(is_physical(s, max_peak_offset_px=4) for s in SHAPES)
+    # a dip below the lowest allowed halo (one that would absorb the neighbouring edge)
+    assert not is_physical(EdgeShape(1.5, peak_height=PEAK_HEIGHT_RANGE[0], peak_offset_px=1.0, peak_width_px=1.0))
+    # a peak outside the window (3 px reach: peak offset limit 3 px)
+    assert not is_physical(EdgeShape(1.5, peak_height=0.5, peak_offset_px=-3.5, peak_width_px=1.0),
+                           max_peak_offset_px=3.0)
+    # a window holding a step and, 2.5 px away, the next (falling) edge: the free peak would take
+    # the falling edge as a dip; the bounds keep the fit inside, and the result is flagged
+    u = np.linspace(-3, 3, 61)
+    z = parametric_profile(u, EdgeShape(0.8)) - parametric_profile(u - 2.5, EdgeShape(0.8))
+    shape, _ = fit_shape(u, z, kind="parametric", peak_side=1, max_peak_offset_px=2.5)
+    assert shape.peak_height >= PEAK_HEIGHT_RANGE[0] and abs(shape.peak_offset_px) <= 2.5
+    assert not is_physical(shape, max_peak_offset_px=2.5)
