@@ -48,6 +48,15 @@ class NoiseModel:
         The estimate of ``a`` before that test.
     variance_scale : float
         Factor on the modelled variance found by the correlation fit (1 when none).
+    row_correlation : tuple of float
+        Correlation of the noise between rows at lags 1, 2, ... (smoothed, resampled or
+        drift-corrected frame averages), up to the last lag that is significant (4 standard
+        errors); empty when the rows are independent.  With noise separable in rows and columns
+        the fitted positions of neighbouring rows correlate by the same amount.
+    row_correlation_measured : tuple of float
+        Estimates at lags 1..4 before the test (empty when not estimated).
+    row_correlation_se : float
+        Standard error of those estimates.
     """
 
     variance_intercept: float = math.nan
@@ -55,6 +64,9 @@ class NoiseModel:
     scan_correlation: float = 0.0
     scan_correlation_measured: float = math.nan
     variance_scale: float = 1.0
+    row_correlation: tuple = ()
+    row_correlation_measured: tuple = ()
+    row_correlation_se: float = math.nan
 
     @property
     def correlated(self) -> bool:
@@ -96,10 +108,68 @@ def estimate_noise(win, fit, ok, table, *, scan_correlation: bool = True):
             var = np.maximum(c0 + c1 * signal_, 1e-12)
             gamma0, a_scan, a_se = _scan_correlation(win, fit, ok, var, table)
     correlated = abs(a_scan) > 4 * a_se
+    rho, rho_se = _row_correlation(win, fit, ok, var, table, a_scan if correlated else 0.0)
+    significant = np.flatnonzero(np.abs(rho) > 4 * rho_se)
+    kept = tuple(float(r) for r in rho[:significant[-1] + 1]) if significant.size else ()
     noise = NoiseModel(variance_intercept=c0, variance_per_signal=c1,
                        scan_correlation=float(a_scan) if correlated else 0.0,
-                       scan_correlation_measured=float(a_scan), variance_scale=float(gamma0))
+                       scan_correlation_measured=float(a_scan), variance_scale=float(gamma0),
+                       row_correlation=kept, row_correlation_measured=tuple(float(r) for r in rho),
+                       row_correlation_se=float(rho_se))
     return noise, var
+
+
+def _row_correlation(win, res, ok, var, table, scan_correlation: float, max_lag: int = 4):
+    """Correlation of the noise between rows, lags 1..``max_lag``, from the fit residuals.
+
+    Normalised residuals of every window pixel are put back at their (row, column) in the
+    image; the systematic misfit of the profile (the mean residual of each edge against the
+    distance from the fitted position, in 0.25 px bins) is removed first, since rows whose edges
+    sit at similar places share it.  The correlation at lag l is the normalised sum of products
+    of residuals l rows apart in the same column.  Each row's own fit removes three parameters
+    from its residuals; neighbouring rows remove nearly the same ones, so the ratio is unbiased
+    to first order.  Standard error: ``sqrt((1 + a^2) / (1 - a^2) / n_pairs)``, ``a`` the scan
+    correlation (products of two first-order series of coefficient a).
+    Returns (rho, se): rho of shape (max_lag,), zeros and infinite se when not estimable.
+    """
+    n_total = win.y.shape[0]
+    n_edges = int(win.edge.max()) + 1 if n_total else 0
+    none = np.zeros(max_lag), math.inf
+    if n_edges == 0 or n_total % n_edges:
+        return none
+    n_rows = n_total // n_edges
+    if n_rows < 4 * max_lag:
+        return none
+    mu, _ = table.evaluate(win.edge, win.cols - res.x0[:, None], with_slope=False)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        e = (win.y - res.offset[:, None] - res.gain[:, None] * mu) / np.sqrt(var)
+    use = ok[:, None] & win.mask & np.isfinite(e)
+    if np.count_nonzero(use) < 1000:
+        return none
+    u = win.cols - res.x0[:, None]
+    lo = float(np.nanmin(np.where(use, u, np.nan)))
+    k = np.floor((u - lo) / 0.25).astype(np.int64)
+    n_bins = int(k[use].max()) + 1
+    key = (win.edge[:, None] * n_bins + k)[use]
+    mean = np.bincount(key, weights=e[use], minlength=n_edges * n_bins) / \
+        np.maximum(np.bincount(key, minlength=n_edges * n_bins), 1)
+    resid = e[use] - mean[key]
+    rows = np.broadcast_to((np.arange(n_total) % n_rows)[:, None], e.shape)[use]
+    cols = win.cols[use].astype(np.int64)
+    c0 = int(cols.min())
+    image = np.full((n_rows, int(cols.max()) - c0 + 1), np.nan)
+    image[rows, cols - c0] = resid
+    rho, n_pairs = np.zeros(max_lag), np.zeros(max_lag)
+    for lag in range(1, max_lag + 1):
+        a, b = image[:-lag], image[lag:]
+        both = np.isfinite(a) & np.isfinite(b)
+        n_pairs[lag - 1] = np.count_nonzero(both)
+        if n_pairs[lag - 1] < 500:
+            return none
+        aa, bb = a[both], b[both]
+        rho[lag - 1] = float(np.sum(aa * bb) / math.sqrt(np.sum(aa * aa) * np.sum(bb * bb)))
+    a2 = min(scan_correlation ** 2, 0.95)
+    return rho, math.sqrt((1 + a2) / (1 - a2) / n_pairs.min())
 
 
 def position_variance(fit, noise: NoiseModel, n_lags: int):

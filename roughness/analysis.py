@@ -26,9 +26,9 @@ from edges import LOW_CONTRAST_CNR, EdgeTraces
 
 from .noise import floors_disagree, plateau_floor
 from .psd import DETRENDS, WINDOWS
-from .psd_model import PSDModelFit, correlation_length_from_acf, fit_psd_model
-from .stats import (QUANTITIES, LineVariances, RoughnessSummary, analyse_traces, expected_measured_variance,
-                    frames_for_noise_fraction, sampling_plan, summarize)
+from .psd_model import PARAMETER_NAMES, PSDModelFit, correlation_length_from_acf, fit_psd_model
+from .stats import (NOISE_DOMINATED_FRACTION, QUANTITIES, LineVariances, RoughnessSummary, analyse_traces,
+                    expected_measured_variance, frames_for_noise_fraction, sampling_plan, summarize)
 
 __all__ = ["AnalysisOptions", "SpectrumSums", "EdgeDiagnostics", "SamplingAdvice", "ImageAnalysis",
            "PooledSpectrum", "GroupAnalysis", "analyse_image", "analyse_group"]
@@ -124,10 +124,12 @@ class SpectrumSums:
     psd_sum_nm3 : (n_freq,) ndarray
         Sum of the one-sided biased PSDs of the image's traces.
     floor_sum_nm3 : float
-        Sum of their noise floors.
+        Sum of their white noise floors.
     n_traces : int
     line_length_nm : float
         Length of each trace (rows times row spacing).
+    floor_shape : (n_freq,) ndarray
+        Factor on the white floor per frequency (noise correlated between rows); ones if none.
     """
 
     frequency_per_nm: np.ndarray
@@ -135,6 +137,16 @@ class SpectrumSums:
     floor_sum_nm3: float
     n_traces: int
     line_length_nm: float
+    floor_shape: np.ndarray = None
+
+    def __post_init__(self):
+        if self.floor_shape is None:
+            object.__setattr__(self, "floor_shape", np.ones(np.asarray(self.frequency_per_nm).size))
+
+    @property
+    def mean_floor_spectrum_nm3(self) -> np.ndarray:
+        """Mean noise floor per frequency (the white level times ``floor_shape``)."""
+        return self.mean_floor_nm3 * self.floor_shape
 
     @property
     def mean_psd_nm3(self) -> np.ndarray:
@@ -203,7 +215,7 @@ def _advice(summary: RoughnessSummary, model, line_length_nm, row_spacing_nm, op
     frames = frames_for_noise_fraction(noise_var_nm2=sn ** 2, unbiased_var_nm2=vu,
                                        target_fraction=options.noise_share_target)
     lines = math.nan
-    if model is not None and np.isfinite(model.roughness_exponent) and np.isfinite(line_length_nm):
+    if _model_complete(model) and np.isfinite(line_length_nm):
         lines = sampling_plan(sigma_unbiased_nm=math.sqrt(vu), correlation_length_nm=model.correlation_length_nm,
                               roughness_exponent=model.roughness_exponent, noise_sigma_nm=sn,
                               row_spacing_nm=row_spacing_nm, line_length_nm=line_length_nm,
@@ -237,8 +249,18 @@ class ImageAnalysis:
     acf_correlation_length_nm : float
         Model-free 1/e correlation length of the noise-corrected ACF.
     noise_floor_nm3, plateau_nm3, plateau_sd_nm3 : float
-        Covariance floor, the PSD's high-frequency plateau and its sd.
+        Covariance floor (white level), the PSD's high-frequency plateau and its sd.
     floors_disagree : bool
+        The plateau and the floor there (``floor_at_plateau_nm3``) differ by more than 3 sd.
+    plateau_check : str
+        How the plateau was checked: ``"model_tail"`` (model roughness tail subtracted,
+        two-sided), ``"raw_tail"`` (no determined model: only a floor above the PSD fails) or
+        ``"not_possible"`` (no high-frequency bins).
+    floor_at_plateau_nm3 : float
+        Mean of the (possibly coloured) floor over the plateau band.
+    row_noise_correlation : tuple of float
+        Correlation of the edge-position noise between neighbouring rows (lags 1, 2, ...)
+        used to colour the floor; empty when rows are independent.
     edges : EdgeDiagnostics
     invalid_rows, bridged_rows, excluded_edges : int
     reason_counts : tuple of (str, int)
@@ -266,6 +288,9 @@ class ImageAnalysis:
     plateau_nm3: float
     plateau_sd_nm3: float
     floors_disagree: bool
+    plateau_check: str
+    floor_at_plateau_nm3: float
+    row_noise_correlation: tuple
     edges: EdgeDiagnostics
     invalid_rows: int
     bridged_rows: int
@@ -284,15 +309,23 @@ class ImageAnalysis:
 
     @property
     def status(self) -> str:
-        """``"below_noise"``, ``"warning"`` (see ``warnings``) or ``"ok"``."""
-        if self.summary.edge.status == "below_noise":
-            return "below_noise"
+        """``"below_noise"``, ``"noise_dominated"`` (the edge's noise share is above
+        :data:`roughness.stats.NOISE_DOMINATED_FRACTION`), ``"warning"`` (see ``warnings``) or
+        ``"ok"``."""
+        if self.summary.edge.status in ("below_noise", "noise_dominated"):
+            return self.summary.edge.status
         return "warning" if self.warnings else "ok"
 
     def spectrum(self, quantity: str) -> SpectrumSums:
         if quantity not in QUANTITIES:
             raise ValueError(f"quantity={quantity!r}: must be one of {QUANTITIES}")
         return getattr(self, f"{quantity}_psd")
+
+
+def _model_complete(model) -> bool:
+    """Whether a PSD model has sigma, xi and H all determined (extrapolations need all three)."""
+    return model is not None and bool(np.isfinite([model.sigma_nm, model.correlation_length_nm,
+                                                   model.roughness_exponent]).all())
 
 
 def _floor_mode(contrast_to_noise, calibrated_cnr) -> str:
@@ -304,7 +337,7 @@ def _floor_mode(contrast_to_noise, calibrated_cnr) -> str:
 def _sums(spectra, line_length_nm) -> SpectrumSums:
     return SpectrumSums(frequency_per_nm=spectra.frequency_per_nm, psd_sum_nm3=spectra.psd_nm3.sum(axis=0),
                         floor_sum_nm3=float(spectra.floor_nm3.sum()), n_traces=spectra.n_traces,
-                        line_length_nm=line_length_nm)
+                        line_length_nm=line_length_nm, floor_shape=spectra.floor_shape)
 
 
 def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions()) -> ImageAnalysis:
@@ -353,23 +386,31 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
     rng = np.random.default_rng(options.seed)
     summary = summarize([rough.lines], n_resamples=options.n_resamples, confidence=options.confidence, rng=rng)
     try:
-        model = fit_psd_model(rough.frequency_per_nm, rough.edge.psd_nm3, rough.edge.floor_nm3,
+        model = fit_psd_model(rough.frequency_per_nm, rough.edge.psd_nm3, rough.edge.floor_spectrum_nm3,
                               window=options.psd_window, n_resamples=options.model_resamples,
                               floor=_floor_mode(traces.contrast_to_noise, options.calibrated_cnr), rng=rng)
     except (ValueError, RuntimeError):
         model = None
     finite = math.nan
-    if model is not None and np.isfinite(model.roughness_exponent):
+    if _model_complete(model):
         finite = math.sqrt(expected_measured_variance(
             sigma_nm=model.sigma_nm, correlation_length_nm=model.correlation_length_nm,
             roughness_exponent=model.roughness_exponent, n_rows=rough.n_rows,
             row_spacing_nm=rough.row_spacing_nm, detrend=options.detrend))
     floor = float(np.mean(rough.edge.floor_nm3))
-    tail = model.model_nm3(rough.frequency_per_nm) if model is not None else None
-    plateau, plateau_sd = plateau_floor(rough.frequency_per_nm, rough.edge.psd_nm3.mean(axis=0),
-                                        n_traces=rough.edge.n_traces, row_spacing_nm=rough.row_spacing_nm,
-                                        window=options.psd_window, roughness_tail_nm3=tail)
-    disagree = floors_disagree(plateau, plateau_sd, floor)
+    # the plateau check always runs: against the model's roughness tail where the model's
+    # exponent is determined (two-sided), else against the raw tail (a floor above it is wrong)
+    f = rough.frequency_per_nm
+    floor_spectrum = rough.edge.floor_spectrum_nm3.mean(axis=0) if rough.edge.n_traces else np.full(f.size, np.nan)
+    with_tail = model is not None and model.h_determined
+    plateau, plateau_sd = plateau_floor(f, rough.edge.psd_nm3.mean(axis=0), n_traces=rough.edge.n_traces,
+                                        row_spacing_nm=rough.row_spacing_nm, window=options.psd_window,
+                                        roughness_tail_nm3=model.model_nm3(f) if with_tail else None)
+    floor_hf, _ = plateau_floor(f, floor_spectrum, n_traces=1, row_spacing_nm=rough.row_spacing_nm,
+                                window=options.psd_window)
+    disagree = floors_disagree(plateau, plateau_sd, floor_hf, one_sided=not with_tail)
+    check = ("not_possible" if not (np.isfinite(plateau) and np.isfinite(floor_hf))
+             else "model_tail" if with_tail else "raw_tail")
     xi_acf = correlation_length_from_acf(rough.acf_edge_nm2,
                                          noise_var_nm2=float(np.nanmean(rough.edge_var_noise_nm2)),
                                          row_spacing_nm=rough.row_spacing_nm)
@@ -385,11 +426,7 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
                             valid_rows=traces.valid.sum(1), invalid_rows=(~traces.valid).sum(1),
                             exclusion=rough.edge_exclusion, flags=np.asarray(traces.edge_flags, str))
     warnings = _warnings(summary, model, traces, length, n_invalid)
-    if disagree:
-        warnings.append(("floors_disagree", f"the PSD's high-frequency plateau ({plateau:.3g} nm^3) and the "
-                                            f"fit-covariance noise floor ({floor:.3g} nm^3) disagree: noise may be "
-                                            "correlated between rows (smoothing, resampling, charging), or the "
-                                            "fit's covariance is off"))
+    warnings += _floor_warnings(disagree, check, plateau, floor_hf, traces.noise_model)
     if traces.detector in ("threshold", "slope"):
         warnings.append(("baseline_detector", f"{traces.detector} detector: its noise floor is a linearised "
                                               "estimate, and at low contrast-to-noise it shrinks real roughness"))
@@ -402,7 +439,8 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
         edge_psd=_sums(rough.edge, length), width_psd=_sums(rough.width, length),
         centre_psd=_sums(rough.centre, length), psd_model=model, model_sigma_finite_nm=finite,
         acf_correlation_length_nm=xi_acf, noise_floor_nm3=floor, plateau_nm3=plateau, plateau_sd_nm3=plateau_sd,
-        floors_disagree=disagree, edges=edges, invalid_rows=n_invalid, bridged_rows=rough.bridged_rows,
+        floors_disagree=disagree, plateau_check=check, floor_at_plateau_nm3=floor_hf,
+        row_noise_correlation=tuple(traces.noise_model.row_correlation), edges=edges, invalid_rows=n_invalid, bridged_rows=rough.bridged_rows,
         excluded_edges=int(np.count_nonzero(rough.edge_exclusion != "")),
         reason_counts=tuple(traces.reason_counts().items()),
         advice=_advice(summary, model, length, rough.row_spacing_nm, options), warnings=tuple(warnings))
@@ -411,20 +449,27 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
 def _warnings(summary: RoughnessSummary, model, traces: EdgeTraces, length_nm, n_invalid):
     out = []
     nf = summary.edge.noise_fraction
-    if np.isfinite(nf) and nf > 0.5:
-        out.append(("noise_dominates", f"image noise is {100 * nf:.0f}% of the measured edge variance; "
-                                       "the unbiased value leans heavily on the noise estimate"))
-    if summary.edge.status == "below_noise":
-        out.append(("below_noise", "the unbiased edge roughness is below the noise: not measurable at this "
-                                   "noise level"))
+    if np.isfinite(nf) and nf >= 1:
+        out.append(("below_noise", "the noise estimate is as large as the measured edge variance: the unbiased "
+                                   "edge roughness is not measurable at this noise level"))
+    elif np.isfinite(nf) and nf > NOISE_DOMINATED_FRACTION:
+        out.append(("noise_dominated", f"image noise is {100 * nf:.0f}% of the measured edge variance: the unbiased "
+                                       "value rests on a small difference of two large numbers and is not reported "
+                                       "as a confident value; more frames or dose would fix it"))
+    elif np.isfinite(nf) and nf > 0.5:
+        out.append(("noise_large", f"image noise is {100 * nf:.0f}% of the measured edge variance; the unbiased "
+                                   "value leans heavily on the noise estimate"))
     if summary.n_lines < 5:
         out.append(("few_lines", f"only {summary.n_lines} whole lines: confidence intervals are wide"))
     if model is not None and np.isfinite(model.correlation_length_nm):
         ratio = length_nm / model.correlation_length_nm
         if ratio < 50:
             out.append(("short_lines", f"lines are only {ratio:.0f} correlation lengths long: the measured sigma "
-                                       f"is biased low by about {100 * 2.2 / ratio:.0f}% against an infinitely "
-                                       "long line"))
+                                       f"is biased low by about {min(100.0, 100 * 2.2 / ratio):.0f}% against an "
+                                       "infinitely long line"))
+    if model is not None and model.not_determined:
+        out.append(("model_not_determined", "PSD model: " + "; ".join(
+            f"{PARAMETER_NAMES[name]} not determined ({why})" for name, why in model.not_determined)))
     if n_invalid > 0.01 * traces.valid.size:
         reasons = ", ".join(f"{k} {n}" for k, n in traces.reason_counts().items())
         out.append(("failed_rows", f"{100 * n_invalid / traces.valid.size:.1f}% of row fits failed ({reasons})"))
@@ -432,6 +477,32 @@ def _warnings(summary: RoughnessSummary, model, traces: EdgeTraces, length_nm, n
     if low:
         out.append(("low_contrast", f"{low} edges have contrast-to-noise below {LOW_CONTRAST_CNR:g}: their "
                                     "uncertainties are under-stated and the noise floor is too low"))
+    return out
+
+
+def _floor_warnings(disagree, check, plateau, floor_hf, noise_model):
+    out = []
+    rho = tuple(noise_model.row_correlation)
+    if rho:
+        out.append(("rows_correlated", f"image noise is correlated between rows (lag-1 correlation {rho[0]:.2f}): "
+                                       "the image was smoothed, resampled or frame-averaged with drift correction; "
+                                       "the noise floor is coloured accordingly (low frequencies carry more noise)"))
+    if check == "not_possible":
+        out.append(("plateau_unchecked", "the noise floor could not be checked against the PSD's high-frequency "
+                                         "plateau (no bins there)"))
+    elif disagree and floor_hf > plateau:
+        ratio = floor_hf / plateau if plateau > 0 else math.inf
+        times = f"{ratio:.1f} times" if np.isfinite(ratio) else "far"
+        out.append(("floor_above_data", f"the noise floor lies {times} above the measured PSD at high frequency "
+                                        f"({floor_hf:.3g} against {plateau:.3g} nm^3): the noise is over-stated "
+                                        "(noise correlated between rows that was not detected, a filtered image, "
+                                        "or a fit covariance that is off), so the unbiased values and the noise "
+                                        "share are not credible"))
+    elif disagree:
+        out.append(("floor_below_plateau", f"the PSD's high-frequency plateau ({plateau:.3g} nm^3) lies above the "
+                                           f"noise floor ({floor_hf:.3g} nm^3) beyond the roughness model: noise the "
+                                           "fit covariance does not see (charging, vibration, drift) or aliased "
+                                           "roughness; the unbiased values may be too high"))
     return out
 
 
@@ -446,9 +517,12 @@ class PooledSpectrum:
     psd_biased_nm3 : (n_freq,) ndarray
         Length-weighted mean one-sided PSD as measured.
     noise_floor_nm3 : float
-        Length-weighted mean covariance floor.
+        Length-weighted mean covariance floor (white level).
     n_traces, n_images : int
         Traces and images that contributed.
+    noise_floor_spectrum_nm3 : (n_freq,) ndarray
+        The floor per frequency (coloured where noise is correlated between rows); what
+        ``psd_unbiased_nm3`` subtracts.
     """
 
     frequency_per_nm: np.ndarray
@@ -456,10 +530,16 @@ class PooledSpectrum:
     noise_floor_nm3: float
     n_traces: int
     n_images: int
+    noise_floor_spectrum_nm3: np.ndarray = None
+
+    def __post_init__(self):
+        if self.noise_floor_spectrum_nm3 is None:
+            object.__setattr__(self, "noise_floor_spectrum_nm3",
+                               np.full(np.asarray(self.frequency_per_nm).size, self.noise_floor_nm3))
 
     @property
     def psd_unbiased_nm3(self) -> np.ndarray:
-        return self.psd_biased_nm3 - self.noise_floor_nm3
+        return self.psd_biased_nm3 - self.noise_floor_spectrum_nm3
 
 
 @dataclass(frozen=True)
@@ -518,10 +598,11 @@ def common_grid(spectra) -> np.ndarray:
     return np.arange(int(math.floor(f_top / df * (1 + 1e-9))) + 1) * df
 
 
-def _on_grid(s: SpectrumSums, f) -> np.ndarray:
+def _on_grid(s: SpectrumSums, f, values=None) -> np.ndarray:
+    values = s.mean_psd_nm3 if values is None else values
     if s.frequency_per_nm.size == f.size and np.allclose(s.frequency_per_nm, f, rtol=1e-9, atol=0):
-        return s.mean_psd_nm3
-    return np.interp(f, s.frequency_per_nm, s.mean_psd_nm3)
+        return values
+    return np.interp(f, s.frequency_per_nm, values)
 
 
 def _pool(spectra, f) -> PooledSpectrum | None:
@@ -532,8 +613,10 @@ def _pool(spectra, f) -> PooledSpectrum | None:
     w = w / w.sum()
     psd = np.sum([wi * _on_grid(s, f) for wi, s in zip(w, use)], axis=0)
     floor = float(np.sum([wi * s.mean_floor_nm3 for wi, s in zip(w, use)]))
+    floor_spectrum = np.sum([wi * _on_grid(s, f, s.mean_floor_spectrum_nm3) for wi, s in zip(w, use)], axis=0)
     return PooledSpectrum(frequency_per_nm=f, psd_biased_nm3=psd, noise_floor_nm3=floor,
-                          n_traces=int(sum(s.n_traces for s in use)), n_images=len(use))
+                          n_traces=int(sum(s.n_traces for s in use)), n_images=len(use),
+                          noise_floor_spectrum_nm3=floor_spectrum)
 
 
 def analyse_group(images, options: AnalysisOptions = AnalysisOptions(), *, name: str = "") -> GroupAnalysis:
@@ -588,7 +671,8 @@ def analyse_group(images, options: AnalysisOptions = AnalysisOptions(), *, name:
         use = [im for im in images if im.edge_psd.n_traces]
         try:
             model = fit_psd_model(f, np.array([_on_grid(im.edge_psd, f) for im in use]),
-                                  np.array([im.edge_psd.mean_floor_nm3 for im in use]),
+                                  np.array([_on_grid(im.edge_psd, f, im.edge_psd.mean_floor_spectrum_nm3)
+                                            for im in use]),
                                   weights=np.array([im.edge_psd.n_traces * im.line_length_nm for im in use]),
                                   window=options.psd_window, n_resamples=options.model_resamples,
                                   floor=_floor_mode(np.concatenate([im.edges.contrast_to_noise for im in use]),

@@ -30,7 +30,7 @@ from scipy.stats import t as student_t
 from edges._types import EdgeTraces
 
 from ._selfaffine import matern_acf
-from .noise import noise_floor_nm3, noise_variance_nm2
+from .noise import floor_shape, noise_floor_nm3, noise_variance_nm2
 from .psd import bridge_gaps, detrend_basis, periodogram
 from .psd import detrend as detrend_traces
 
@@ -104,11 +104,24 @@ class TraceSpectra:
         Biased (measured) PSD of each detrended trace, nm^3.
     floor_nm3 : (n_traces,) ndarray
         Each trace's white noise floor from the fit covariance, nm^3.
+    floor_shape : (n_freq,) ndarray
+        Factor on the white floor per frequency for noise correlated between rows (ones when
+        the rows are independent); see :func:`roughness.noise.floor_shape`.
     """
 
     frequency_per_nm: np.ndarray
     psd_nm3: np.ndarray
     floor_nm3: np.ndarray
+    floor_shape: np.ndarray = None
+
+    def __post_init__(self):
+        if self.floor_shape is None:
+            object.__setattr__(self, "floor_shape", np.ones(np.asarray(self.frequency_per_nm).size))
+
+    @property
+    def floor_spectrum_nm3(self) -> np.ndarray:
+        """(n_traces, n_freq) noise floor of each trace per frequency."""
+        return np.asarray(self.floor_nm3)[:, None] * self.floor_shape[None, :]
 
     @property
     def n_traces(self) -> int:
@@ -162,6 +175,12 @@ class ImageRoughness:
     @property
     def n_lines(self) -> int:
         return self.lines.n_lines
+
+
+#: Noise share of the measured variance above which an unbiased value is not reported as
+#: confident: an error e in the noise estimate moves the unbiased sigma by about
+#: e * share / (2 (1 - share)), i.e. by the full e (10% for a 10% floor error) at a share of 2/3.
+NOISE_DOMINATED_FRACTION = 2.0 / 3.0
 
 
 def _biased_var(z):
@@ -234,13 +253,14 @@ def analyse_traces(traces: EdgeTraces, *, detrend: str = "linear", window: str =
         u["cd_nm"][j] = float(np.mean(x[ri] - x[li]))
     ue = np.flatnonzero(usable)
     f, pe = periodogram(z[ue], row_spacing_nm=dy, window=window)
-    edge = TraceSpectra(f, pe, noise_floor_nm3(s[ue], row_spacing_nm=dy, window=window))
+    shape = floor_shape(f, traces.noise_model.row_correlation, row_spacing_nm=dy)
+    edge = TraceSpectra(f, pe, noise_floor_nm3(s[ue], row_spacing_nm=dy, window=window), shape)
     L = np.array([p[0] for p in pairs], dtype=np.int64)
     R = np.array([p[1] for p in pairs], dtype=np.int64)
     width_floor = noise_floor_nm3(np.sqrt(s[L] ** 2 + s[R] ** 2), row_spacing_nm=dy, window=window)
-    width = TraceSpectra(f, periodogram(z[R] - z[L], row_spacing_nm=dy, window=window)[1], width_floor)
+    width = TraceSpectra(f, periodogram(z[R] - z[L], row_spacing_nm=dy, window=window)[1], width_floor, shape)
     centre = TraceSpectra(f, periodogram(0.5 * (z[R] + z[L]), row_spacing_nm=dy, window=window)[1],
-                          0.25 * width_floor)
+                          0.25 * width_floor, shape)
     if ue.size:
         spec = np.abs(np.fft.rfft(z[ue], n=2 * n, axis=1)) ** 2
         acf = np.fft.irfft(spec, axis=1)[:, :n].mean(axis=0) / n          # biased estimator (/N)
@@ -340,9 +360,13 @@ class QuantityRoughness:
 
     @property
     def status(self) -> str:
-        """``"ok"``, ``"below_noise"`` (unbiased variance not positive) or ``"not_measured"``."""
+        """``"ok"``; ``"noise_dominated"`` when noise is more than :data:`NOISE_DOMINATED_FRACTION`
+        of the measured variance; ``"below_noise"`` (unbiased variance not positive) or
+        ``"not_measured"``."""
         v = self.var_unbiased_nm2
-        return "ok" if v > 0 else ("below_noise" if np.isfinite(v) else "not_measured")
+        if not v > 0:
+            return "below_noise" if np.isfinite(v) else "not_measured"
+        return "noise_dominated" if self.noise_fraction > NOISE_DOMINATED_FRACTION else "ok"
 
 
 @dataclass(frozen=True)

@@ -17,6 +17,8 @@ from pathlib import Path
 import numpy as np
 from matplotlib.figure import Figure
 
+from ..psd_model import PARAMETER_NAMES
+
 __all__ = ["write_report", "plot_psd", "plot_overlay", "plot_traces"]
 
 _C = {"biased": "#b5562a", "floor": "#7a7a7a", "unbiased": "#1f5f8b", "model": "#2e8b57", "edge": "#f2c14e"}
@@ -37,22 +39,25 @@ def plot_psd(ax, frequency_per_nm, psd_biased_nm3, floor_nm3, model=None, *, tit
     frequency_per_nm : (n_freq,) ndarray
     psd_biased_nm3 : (n_freq,) ndarray
         One-sided PSD as measured.
-    floor_nm3 : float
-        White noise floor.
+    floor_nm3 : float or (n_freq,) ndarray
+        Noise floor: white, or per frequency (noise correlated between rows).
     model : PSDModelFit, optional
     title : str
     """
     f = np.asarray(frequency_per_nm)[1:]
     pb = np.asarray(psd_biased_nm3)[1:]
-    pu = pb - floor_nm3
+    floor = np.broadcast_to(np.asarray(floor_nm3, float), np.asarray(frequency_per_nm).shape)[1:]
+    pu = pb - floor
     ax.loglog(f, pb, color=_C["biased"], lw=1.2, label="biased (measured)")
-    ax.axhline(floor_nm3, color=_C["floor"], ls="--", lw=1, label="noise floor (fit covariance)")
+    ax.loglog(f, floor, color=_C["floor"], ls="--", lw=1, label="noise floor (fit covariance)")
     pos = pu > 0
     ax.loglog(f[pos], pu[pos], ".", ms=2.5, color=_C["unbiased"], label="unbiased (floor removed)")
     if model is not None:
+        xi = (f"xi {model.correlation_length_nm:.1f} nm" if np.isfinite(model.correlation_length_nm)
+              else "xi not determined")
         h = f"H {model.roughness_exponent:.2f}" if model.h_determined else "H not determined"
-        ax.loglog(f, model.model_nm3(f), color=_C["model"], lw=1.5,
-                  label=f"model: xi {model.correlation_length_nm:.1f} nm, {h}")
+        band = (f >= model.fit_min_per_nm) & (f <= model.fit_max_per_nm)
+        ax.loglog(f[band], model.model_nm3(f[band]), color=_C["model"], lw=1.5, label=f"model: {xi}, {h}")
     ax.set_xlabel("spatial frequency (1/nm)")
     ax.set_ylabel("PSD, one-sided (nm$^3$)")
     ax.set_title(title, fontsize=9)
@@ -91,12 +96,23 @@ def plot_traces(ax, traces, *, n_edges=6):
 
 
 def _fmt(x, nd=2):
-    return "n/a" if x is None or not np.isfinite(x) else f"{x:.{nd}f}"
+    return "not determined" if x is None or not np.isfinite(x) else f"{x:.{nd}f}"
+
+
+def _pct(x):
+    return "not determined" if x is None or not np.isfinite(x) else f"{100 * x:.0f}%"
+
+
+def _pm(x, se, nd=2, unit=""):
+    """``x +- se unit``, or ``x unit (no standard error)`` when the error is unknown."""
+    if se is None or not np.isfinite(se):
+        return f"{_fmt(x, nd)}{unit} (no standard error)"
+    return f"{_fmt(x, nd)} &plusmn; {_fmt(se, nd)}{unit}"
 
 
 def _ci(v):
     lo, hi = v.sigma_unbiased_low_nm, v.sigma_unbiased_high_nm
-    return f"{_fmt(3 * lo)} to {_fmt(3 * hi)}" if np.isfinite(lo) and np.isfinite(hi) else "n/a"
+    return f"{_fmt(3 * lo)} to {_fmt(3 * hi)}" if np.isfinite(lo) and np.isfinite(hi) else "not determined"
 
 
 def _table(summary, model, finite_nm=math.nan):
@@ -106,23 +122,23 @@ def _table(summary, model, finite_nm=math.nan):
         v = summary.quantity(q)
         rows.append(f"<tr><td>{esc(name)}</td><td>{_fmt(3 * v.sigma_biased_nm)}</td>"
                     f"<td>{_fmt(3 * v.sigma_noise_nm)}</td><td><b>{_fmt(3 * v.sigma_unbiased_nm)}</b></td>"
-                    f"<td>{_ci(v)}</td><td>{_fmt(100 * v.noise_fraction, 0)}%</td>"
+                    f"<td>{_ci(v)}</td><td>{_pct(v.noise_fraction)}</td>"
                     f"<td>{esc(v.status)}</td></tr>")
     extra = []
     if model is not None:
-        extra.append(f"correlation length {_fmt(model.correlation_length_nm, 1)} &plusmn; "
-                     f"{_fmt(model.correlation_length_se_nm, 1)} nm")
-        if model.h_determined:
-            extra.append(f"roughness exponent {_fmt(model.roughness_exponent)} &plusmn; {_fmt(model.roughness_exponent_se)}")
-        else:
-            extra.append("roughness exponent not determined: the roughness tail does not rise far enough above the "
-                         "noise floor (more frames, more lines or a smaller pixel would help)")
+        def value(name, text):
+            why = model.reason(name)
+            return text if not why else f"{PARAMETER_NAMES[name]} not determined ({esc(why)})"
+        extra.append(value("correlation_length", "correlation length " + _pm(
+            model.correlation_length_nm, model.correlation_length_se_nm, 1, " nm")))
+        extra.append(value("roughness_exponent", "roughness exponent " + _pm(
+            model.roughness_exponent, model.roughness_exponent_se)))
         if model.floor_mode == "free":
             extra.append("the PSD model's noise floor was fitted, not fixed to the fit covariance's "
                          "(contrast-to-noise below 5, where the covariance under-states the scatter)")
-        extra.append(f"PSD(0) {_fmt(model.psd0_nm3, 1)} nm<sup>3</sup> one-sided "
-                     f"({_fmt(model.psd0_two_sided_nm3, 1)} nm<sup>3</sup> two-sided, as usually quoted)")
-        extra.append(f"sigma of an infinitely long edge (model) {_fmt(model.sigma_nm)} nm")
+        extra.append(value("psd0", f"PSD(0) {_fmt(model.psd0_nm3, 1)} nm<sup>3</sup> one-sided "
+                                   f"({_fmt(model.psd0_two_sided_nm3, 1)} nm<sup>3</sup> two-sided, as usually quoted)"))
+        extra.append(value("sigma", f"sigma of an infinitely long edge (model) {_fmt(model.sigma_nm)} nm"))
         if np.isfinite(finite_nm) and model.sigma_nm > 0:
             extra.append(f"over the measured length, after detrending, the model expects {_fmt(finite_nm)} nm "
                          f"({_fmt(100 * (finite_nm / model.sigma_nm - 1), 1)}%: a finite, detrended line always "
@@ -184,11 +200,11 @@ def write_report(meas, path) -> Path:
         if g.edge_psd is not None:
             fig, axes = _figure(figsize=(10, 3.6), ncols=2)
             d = g.edge_psd
-            plot_psd(axes[0], d.frequency_per_nm, d.psd_biased_nm3, d.noise_floor_nm3, g.psd_model,
+            plot_psd(axes[0], d.frequency_per_nm, d.psd_biased_nm3, d.noise_floor_spectrum_nm3, g.psd_model,
                      title=f"edges, {d.n_traces} traces")
             if g.width_psd is not None:
                 w = g.width_psd
-                plot_psd(axes[1], w.frequency_per_nm, w.psd_biased_nm3, w.noise_floor_nm3, None,
+                plot_psd(axes[1], w.frequency_per_nm, w.psd_biased_nm3, w.noise_floor_spectrum_nm3, None,
                          title=f"widths, {w.n_traces} lines")
             parts.append(f"<div><img alt='pooled PSD' src='{_png(fig)}'></div>")
         if len(meas.groups) > 1:
@@ -219,7 +235,7 @@ def write_report(meas, path) -> Path:
             figs.append(_png(fig))
         fig, ax = _figure(figsize=(4, 4))
         e = a.edge_psd
-        plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, a.noise_floor_nm3, a.psd_model, title="edge PSD")
+        plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, e.mean_floor_spectrum_nm3, a.psd_model, title="edge PSD")
         figs.append(_png(fig))
         parts.append("<div class='figs'>" + "".join(f"<img alt='figure' src='{u}'>" for u in figs) + "</div>")
     parts.append("<p class='note'>Extra frames or a higher dose cut image noise but can shrink or damage resist "
@@ -244,7 +260,7 @@ def _groups_section(groups, settings) -> str:
         parts.append(f"<tr><td>{esc(g.name)}</td><td>{g.n_images}</td>"
                      f"<td>{_fmt(3 * v.edge.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.edge.sigma_unbiased_nm)}</b>"
                      f"</td><td>{_fmt(3 * v.width.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.width.sigma_unbiased_nm)}"
-                     f"</b></td><td>{_fmt(100 * v.edge.noise_fraction, 0)}%</td>"
+                     f"</b></td><td>{_pct(v.edge.noise_fraction)}</td>"
                      f"<td>{_fmt(m.correlation_length_nm if m else math.nan, 1)}</td>"
                      f"<td>{_fmt(m.roughness_exponent if m else math.nan)}</td>"
                      f"<td>{_fmt(g.advice.frames_for_noise_target, 1)}</td>"

@@ -70,6 +70,8 @@ def summary_table(meas) -> pd.DataFrame:
         row.update({
             "edge_sigma_model_finite_nm": a.model_sigma_finite_nm,
             "noise_floor_nm3": a.noise_floor_nm3, "plateau_nm3": a.plateau_nm3, "floors_disagree": a.floors_disagree,
+            "plateau_check": a.plateau_check,
+            "row_noise_correlation": a.row_noise_correlation[0] if a.row_noise_correlation else 0.0,
             "rows": a.n_rows, "invalid_rows": a.invalid_rows, "bridged_rows": a.bridged_rows,
             "excluded_edges": a.excluded_edges, "detector": a.detector, "profile_model": a.profile_model,
             "status": a.status, "warnings": ";".join(a.warning_codes),
@@ -126,7 +128,7 @@ def psd_table(meas) -> pd.DataFrame:
         f = s.frequency_per_nm
         model = g.psd_model.model_nm3(f) if (q == "edge" and g.psd_model is not None) else np.full(f.size, np.nan)
         parts.append(pd.DataFrame({"quantity": q, "frequency_per_nm": f, "psd_biased_nm3": s.psd_biased_nm3,
-                                   "noise_floor_nm3": s.noise_floor_nm3, "psd_unbiased_nm3": s.psd_unbiased_nm3,
+                                   "noise_floor_nm3": s.noise_floor_spectrum_nm3, "psd_unbiased_nm3": s.psd_unbiased_nm3,
                                    "psd_model_nm3": model, "n_traces": s.n_traces, "n_images": s.n_images}))
     if not parts:
         return pd.DataFrame(columns=PSD_COLUMNS)
@@ -145,8 +147,8 @@ def _columns():
         n_images=1, n_lines=1, n_edges=2, n_resamples=0)
     stats = list(_stat_columns(s, None, SamplingAdvice()))
     summary = ["image", "group"] + stats + [
-        "edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "rows", "invalid_rows",
-        "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
+        "edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "plateau_check",
+        "row_noise_correlation", "rows", "invalid_rows", "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
     return summary, ["group", "n_images"] + stats + ["psd_grids"]
 
 

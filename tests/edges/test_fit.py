@@ -224,3 +224,17 @@ def test_pitch_of_eight_pixels_is_measured_on_every_whole_line(rng):
     scatter = np.nanstd(err - np.nanmean(err, axis=1, keepdims=True))
     predicted = math.sqrt(np.nanmean(np.where(et.valid, et.sigma_nm ** 2, np.nan)))
     assert scatter == pytest.approx(predicted, rel=0.15)
+
+
+def test_noise_correlated_between_rows_is_detected(rng):
+    # a 1-px Gaussian smoothing of the whole image: the noise of rows l apart correlates by
+    # exp(-l^2 / 4) (the autocorrelation of a Gaussian kernel of sd 1 is a Gaussian of sd sqrt 2):
+    # 0.78, 0.37, 0.105; ~10^5 pixel pairs give se ~0.005, 0.03 allowed (fit projections, misfit)
+    from scipy import ndimage
+    m, _, _ = line_space(rng, n_rows=512, n_cols=256, dose_per_pixel=30)
+    et = fit_edges(m)
+    assert et.noise_model.row_correlation == ()            # independent rows: nothing found
+    smooth = fit_edges(type(m)(ndimage.gaussian_filter(m.pixels, 1.0), m.pixel_size_nm, source="smoothed"))
+    rho = smooth.noise_model.row_correlation
+    assert len(rho) >= 3
+    np.testing.assert_allclose(rho[:3], np.exp(-np.arange(1, 4) ** 2 / 4), atol=0.03)

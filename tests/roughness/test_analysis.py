@@ -110,3 +110,22 @@ def test_an_image_without_usable_edges_is_refused_with_the_reason(rng):
 def test_options_are_validated(field, value):
     with pytest.raises(ValueError, match=f"{field}="):
         AnalysisOptions(**{field: value})
+
+
+def test_plateau_check_runs_without_a_determined_model(rng):
+    # roughness with xi beyond a tenth of the line: the model's xi and the sigma of an infinite
+    # line are not determined; the claimed per-row noise (0.6 nm) is twice the real one (0.3 nm),
+    # so the floor lies 4x above the PSD's high-frequency plateau and must be reported
+    left, right = edge_pairs(8, 256, 1.0, sigma_nm=1.5, correlation_length_nm=200.0, roughness_exponent=0.8,
+                             rng=rng)
+    e = 0.3 * rng.standard_normal((2, 8, 256))
+    t = make_traces(left + e[0], 30 + right + e[1], np.full(256, 0.6), np.full(256, 0.6))
+    a = analyse_image(t, AnalysisOptions(n_resamples=100, model_resamples=20))
+    assert a.psd_model is not None and not a.psd_model.determined
+    assert a.plateau_check in ("raw_tail", "model_tail")
+    assert a.floors_disagree and "floor_above_data" in a.warning_codes
+    text = dict(a.warnings)["floor_above_data"]
+    assert "times above" in text
+    # every percentage printed in a warning is at most 100
+    import re
+    assert all(float(p) <= 100 for _, w in a.warnings for p in re.findall(r"(\d+(?:\.\d+)?)%", w))

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from roughness._selfaffine import self_affine_psd, two_sided_from_one_sided
-from roughness.psd_model import correlation_length_from_acf, fit_psd_model
+from roughness.psd_model import MAX_CORRELATION_FRACTION, correlation_length_from_acf, fit_psd_model
 from roughness.psd import detrend, periodogram
 from roughness.synth import rough_edges
 
@@ -45,6 +45,29 @@ def test_h_not_determined_when_noise_hides_the_tail(rng):
     f, p = periodogram(detrend(x + noise * rng.standard_normal(x.shape), "linear"), row_spacing_nm=1.0)
     fit = fit_psd_model(f, p, 2 * noise ** 2, n_resamples=30, rng=rng)
     assert not fit.h_determined and math.isnan(fit.roughness_exponent)
+
+
+def test_values_beyond_the_data_are_not_determined(rng):
+    # xi of 400 nm on 256 nm lines: the PSD is a pure power law over every measured bin, so xi,
+    # PSD(0) and the sigma of an infinite line cannot be read (knee below the second bin, 2/L)
+    x = rough_edges(60, 256, 1.0, sigma_nm=3.0, correlation_length_nm=400.0, roughness_exponent=0.5, rng=rng)
+    f, p = periodogram(detrend(x + 0.3 * rng.standard_normal(x.shape), "linear"), row_spacing_nm=1.0)
+    fit = fit_psd_model(f, p, 2 * 0.3 ** 2, n_resamples=20, rng=rng)
+    assert fit.fitted[1] > MAX_CORRELATION_FRACTION * 256 or math.isnan(fit.correlation_length_nm)
+    for name, value in (("correlation_length", fit.correlation_length_nm), ("psd0", fit.psd0_nm3),
+                        ("sigma", fit.sigma_nm)):
+        assert math.isnan(value) and fit.reason(name), name
+    # the curve over the fitted band is still drawn from the fitted values
+    assert np.all(np.isfinite(fit.model_nm3(f[4:])))
+
+
+def test_exponent_at_a_bound_is_not_determined(rng):
+    # an exponent pinned at the fit's lower bound (0.05) says the data hold no power law there:
+    # white roughness (no correlation) under a small floor
+    x = rng.normal(0, 1.0, (80, 512))
+    f, p = periodogram(detrend(x, "linear"), row_spacing_nm=1.0)
+    fit = fit_psd_model(f, p, 0.01, n_resamples=0, rng=rng)
+    assert math.isnan(fit.roughness_exponent) and not fit.h_determined and fit.reason("roughness_exponent")
 
 
 def test_acf_crossing_gives_xi_for_the_exponential(rng):

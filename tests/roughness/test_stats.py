@@ -70,6 +70,33 @@ def test_disagreement_flag_fires_for_noise_correlated_between_rows(rng):
     assert floors_disagree(level, sd, im_noisy.edge.floor_nm3.mean())
 
 
+def test_coloured_floor_matches_noise_correlated_between_rows(rng):
+    # AR(1) between rows, a = 0.6: rho_l = a^l and the noise spectrum is white * (1 - a^2) /
+    # (1 - 2 a cos w + a^2) (any signal-processing text), which the lag sum 1 + 2 sum a^l cos(l w)
+    # reproduces; with the fit's row correlation given, floor and plateau agree again
+    import dataclasses
+    clean, noisy, s = _noisy(rng, noise=np.full(512, 0.8), row_correlation=0.6)
+    rho = tuple(0.6 ** np.arange(1, 25))
+    noisy = dataclasses.replace(noisy, noise_model=dataclasses.replace(noisy.noise_model, row_correlation=rho))
+    im_noisy, im_clean = analyse_traces(noisy), analyse_traces(clean)
+    f = im_noisy.frequency_per_nm
+    w = 2 * np.pi * f
+    exact = 2 * 0.8 ** 2 * (1 - 0.36) / (1 - 1.2 * np.cos(w) + 0.36)
+    floor = im_noisy.edge.floor_spectrum_nm3.mean(axis=0)
+    np.testing.assert_allclose(floor, exact, rtol=1e-4)     # 24 lags: truncation ~ 0.6^25 ~ 3e-6
+    only = analyse_traces(dataclasses.replace(noisy, position_nm=noisy.position_nm - clean.position_nm))
+    pure_noise = only.edge.psd_nm3.mean(axis=0)
+    # two bands, 500 traces x ~50 bins each: se ~ 1% (Hann neighbours correlate); 4% allowed
+    for band in ((f > 0.02) & (f < 0.12), (f > 0.35) & (f < 0.49)):
+        assert pure_noise[band].mean() == pytest.approx(floor[band].mean(), rel=0.04)
+    level, sd = plateau_floor(f, im_noisy.edge.psd_nm3.mean(0), n_traces=500, row_spacing_nm=1.0,
+                              roughness_tail_nm3=im_clean.edge.psd_nm3.mean(0))
+    hf, _ = plateau_floor(f, floor, n_traces=1, row_spacing_nm=1.0)
+    assert not floors_disagree(level, sd, hf)
+    # the noise variance (what the unbiased sigma subtracts) does not depend on the colour
+    assert np.nanmean(im_noisy.edge_var_noise_nm2) == pytest.approx(0.64 * (1 - 2 / 512), rel=1e-6)
+
+
 def test_width_centre_and_correlation_with_correlated_edges(rng):
     # Truth: the same edges without noise.  Tolerance: 4 x the bootstrap standard error.
     clean, noisy, _ = _noisy(rng, rho=0.4)
