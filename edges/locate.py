@@ -15,8 +15,8 @@ from scipy import ndimage
 
 from ._types import Micrograph
 
-__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX", "POLARITIES",
-           "ORIENTATIONS"]
+__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX", "MAX_TILT_DEG",
+           "POLARITIES", "ORIENTATIONS"]
 
 #: Smallest reach of a fit window on either side of an edge (pixels) that is still fitted: with
 #: 2 px a side (5 pixels for position, gain and offset) edges 4 px apart, pitches of 8 px, are
@@ -26,7 +26,12 @@ MIN_HALF_WINDOW_PX = 2
 POLARITIES = ("auto", "bright", "dark")
 #: Line directions: "auto", "vertical", "horizontal" (horizontal images are transposed).
 ORIENTATIONS = ("auto", "vertical", "horizontal")
-_MAX_TILT_DEG = 3.0
+#: Largest tilt of the lines against the image columns that is measured (degrees); beyond it
+#: the image is refused (rotate it first): the fit follows tilted edges row by row and the
+#: detrend removes the tilt, but steeper lines stretch the profile across a row by 1 / cos and
+#: move far from the window between block estimates.
+MAX_TILT_DEG = 5.0
+_TILT_SEARCH_DEG = 15.0      # how far the block cross-correlation looks (to name the angle)
 
 
 class LocateError(ValueError):
@@ -134,8 +139,18 @@ def _block_shift(a: np.ndarray, b: np.ndarray, max_shift: int) -> float:
 
 
 def _tilt(px: np.ndarray) -> tuple[float, float]:
+    """Column shift per row from the cross-correlation of the mean profiles of row blocks.
+
+    Blocks are short enough that the largest tilt searched moves a block's profile by less
+    than half a pitch (a periodic profile is ambiguous beyond that), and at least 8 rows.
+    """
     n_rows = px.shape[0]
-    n_blocks = int(min(16, n_rows // 32))
+    period = _period_px(px[:min(n_rows, 32)].mean(axis=0))
+    half = 0.5 * period - 1.0
+    block_rows = max(n_rows // 16, 32)
+    if np.isfinite(half):
+        block_rows = max(8, min(block_rows, int(half / math.tan(math.radians(_TILT_SEARCH_DEG)))))
+    n_blocks = int(min(128, n_rows // block_rows))
     ref = 0.5 * (n_rows - 1)
     if n_blocks < 3:
         return 0.0, ref
@@ -143,12 +158,18 @@ def _tilt(px: np.ndarray) -> tuple[float, float]:
     prof = [ndimage.gaussian_filter1d(px[a:b].mean(axis=0), 1.0) for a, b in zip(edges_[:-1], edges_[1:])]
     centres = 0.5 * (edges_[:-1] + edges_[1:] - 1)
     step = np.diff(centres).max()
-    max_shift = int(math.ceil(step * math.tan(math.radians(_MAX_TILT_DEG)))) + 2
+    max_shift = min(int(math.ceil(step * math.tan(math.radians(_TILT_SEARCH_DEG)))) + 2, px.shape[1] // 4,
+                    max(1, int(half)) if np.isfinite(half) else px.shape[1])
     shifts = np.concatenate([[0.0], np.cumsum([_block_shift(prof[i], prof[i + 1], max_shift)
                                                for i in range(n_blocks - 1)])])
     slope = np.polyfit(centres, shifts, 1)[0]
-    if abs(slope) > math.tan(math.radians(_MAX_TILT_DEG)):
-        slope = 0.0   # no consistent tilt (e.g. a featureless image); report none
+    # a tilt is real when the blocks agree on it: the mean shift from block to block is many
+    # standard errors from zero (4: one in a thousand for noise), and the drift exceeds a pixel
+    steps = np.diff(shifts)
+    se = float(np.std(steps, ddof=1)) / math.sqrt(steps.size) if steps.size > 1 else math.inf
+    consistent = abs(float(np.mean(steps))) > 4 * se and abs(slope) * (centres[-1] - centres[0]) > 1.0
+    if not consistent:
+        slope = 0.0   # no consistent tilt (e.g. a featureless image or a straight one); report none
     return float(slope), ref
 
 
@@ -264,6 +285,11 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     if not hi - lo > max(10 * prof_sd, 1e-12):
         raise LocateError(f"{micrograph.source}: no lines found (profile contrast {hi - lo:.3g} against "
                           f"noise {prof_sd:.3g} grey levels)")
+    angle = math.degrees(math.atan(tilt))
+    if abs(angle) > MAX_TILT_DEG:
+        raise LocateError(f"{micrograph.source}: the lines are tilted by {angle:.1f} degrees against the image "
+                          f"{'rows' if horizontal else 'columns'}; up to {MAX_TILT_DEG:g} degrees are measured: "
+                          "rotate the image (or re-image with the lines aligned) first")
     mid = 0.5 * (lo + hi)
     coarse = _crossings(heavy, mid)
     if len(coarse) < 2:

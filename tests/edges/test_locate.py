@@ -82,3 +82,14 @@ def test_bad_options_are_refused(rng):
         locate_edges(m, window_px=20)
     with pytest.raises(ValueError, match="polarity='grey'"):
         locate_edges(m, polarity="grey")
+
+
+def test_tilt_beyond_the_measured_range_is_refused_with_the_angle(rng):
+    from edges.locate import MAX_TILT_DEG
+    m, _, _ = line_space(rng, n_rows=512, n_cols=300, tilt_deg=MAX_TILT_DEG - 0.5, dose_per_pixel=60)
+    lay = locate_edges(m)
+    # same block statistics as test_tilt_is_followed: ~2% of the slope at 1 sd
+    assert lay.tilt_px_per_row == pytest.approx(math.tan(math.radians(MAX_TILT_DEG - 0.5)), rel=0.06)
+    m, _, _ = line_space(rng, n_rows=512, n_cols=300, tilt_deg=8.0, dose_per_pixel=60)
+    with pytest.raises(LocateError, match=r"virtual: the lines are tilted by (7\.[6-9]|8\.[0-4]) degrees"):
+        locate_edges(m)
