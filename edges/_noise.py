@@ -29,6 +29,9 @@ __all__ = ["NoiseModel", "estimate_noise", "position_variance"]
 #: Seed of the subsample of 1500 rows the scan correlation is estimated from (fixed so that the
 #: same image always gives the same uncertainties).
 _SUBSAMPLE_SEED = 0
+#: Fewest counts per pixel (median over the windows, variance over the shot-noise slope
+#: squared) at which the correlation along the scan is estimated.
+_MIN_COUNTS_FOR_SCAN = 5.0
 
 
 @dataclass(frozen=True)
@@ -101,12 +104,21 @@ def estimate_noise(win, fit, ok, table, *, scan_correlation: bool = True):
     c0, c1, signal_ = _variance_law(win, fit, ok, table)
     var = np.maximum(c0 + c1 * signal_, 1e-12)
     gamma0, a_scan, a_se = 1.0, 0.0, np.inf
-    if scan_correlation:
+    # below ~5 counts per pixel the skew of the counts dominates the residuals' lag sums: the
+    # correlation along the scan is not estimated there (the twin calibrates what is left)
+    counts = float(np.median(var[ok][win.mask[ok]])) / c1 ** 2 if c1 > 0 and ok.any() else np.inf
+    if scan_correlation and counts >= _MIN_COUNTS_FOR_SCAN:
         gamma0, a_scan, a_se = _scan_correlation(win, fit, ok, var, table)
         if a_scan > 4 * a_se:     # refit the variance on the filtered signal, then the correlation again
             c0, c1, signal_ = _variance_law(win, fit, ok, table, scan_filter=a_scan)
             var = np.maximum(c0 + c1 * signal_, 1e-12)
             gamma0, a_scan, a_se = _scan_correlation(win, fit, ok, var, table)
+        if not 0.5 < gamma0 < 2.0:
+            # the variance law and the lag sums disagree by more than a factor 2: the
+            # correlation model does not describe this noise; independent pixels are assumed
+            c0, c1, signal_ = _variance_law(win, fit, ok, table)
+            var = np.maximum(c0 + c1 * signal_, 1e-12)
+            gamma0, a_scan, a_se = 1.0, 0.0, np.inf
     correlated = abs(a_scan) > 4 * a_se
     rho, rho_se = _row_correlation(win, fit, ok, var, table, a_scan if correlated else 0.0)
     significant = np.flatnonzero(np.abs(rho) > 4 * rho_se)
@@ -197,7 +209,20 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     Returns c0, c1 and the signal that the variance is a function of, per pixel.
     """
     mu, dmu = table.evaluate(win.edge, win.cols - res.x0[:, None])
-    model = res.offset[:, None] + res.gain[:, None] * mu
+    fitted = res.offset[:, None] + res.gain[:, None] * mu
+    # the signal the variance follows, from each edge's median offset and step: a row's own
+    # fitted values carry its noise, and noise in the regressor flattens the fitted law
+    # (regression dilution), badly so at a few counts per pixel
+    n_e = int(win.edge.max()) + 1
+    use_rows = ok & np.isfinite(res.offset) & np.isfinite(res.gain)
+    med = np.full((2, n_e), np.nan)
+    for e in range(n_e):
+        rows = use_rows & (win.edge == e)
+        if rows.any():
+            med[:, e] = np.median(res.offset[rows]), np.median(res.gain[rows])
+    med_off = np.where(np.isfinite(med[0]), med[0], np.nanmedian(res.offset[use_rows]) if use_rows.any() else 0.0)
+    med_gain = np.where(np.isfinite(med[1]), med[1], np.nanmedian(res.gain[use_rows]) if use_rows.any() else 0.0)
+    model = med_off[win.edge][:, None] + med_gain[win.edge][:, None] * mu
     X = np.stack([-res.gain[:, None] * dmu, np.ones_like(mu), mu], axis=2) * win.mask[:, :, None]
     G = np.swapaxes(X, 1, 2) @ X
     good_rows = ok & (np.abs(np.linalg.det(G)) > 0)
@@ -205,7 +230,7 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     Ginv[good_rows] = np.linalg.inv(G[good_rows])
     lev = np.einsum("nia,nab,nib->ni", X, Ginv, X)
     with np.errstate(divide="ignore", invalid="ignore"):
-        r2 = (win.y - model) ** 2 / (1.0 - lev)
+        r2 = (win.y - fitted) ** 2 / (1.0 - lev)
     ok = good_rows
     if scan_filter > 0:
         a2 = scan_filter ** 2
@@ -226,8 +251,13 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     else:
         c0, c1 = float(np.mean(v)), 0.0
     floor = 0.05 * float(np.median(v))
-    if c0 + c1 * m.min() < floor or c0 + c1 * m.max() < floor:
-        c0, c1 = float(np.mean(v)), 0.0
+    lo = float(np.min(mb)) if good.sum() >= 3 else float(m.min())
+    if c1 < 0 or c0 + c1 * m.max() < floor:
+        c0, c1 = float(np.mean(v)), 0.0          # no physical law (variance falling with signal)
+    elif c0 + c1 * lo < floor:
+        # shot noise near zero counts: the line through the bins dips below zero at the darkest
+        # signal (a detector offset estimated from few counts); keep the slope, lift the line
+        c0 = floor - c1 * lo
     return float(c0), float(c1), model
 
 

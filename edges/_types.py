@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._noise import NoiseModel
+from ._precision import PrecisionStudy
 
 __all__ = ["Micrograph", "EdgeTraces", "REASONS", "REASON_CODES"]
 
@@ -104,6 +105,9 @@ class EdgeTraces:
     profile_shapes : tuple
         Per edge, the :class:`edges.profiles.EdgeShape` fitted by the model detector (None for
         edges not fitted and for the baselines).
+    precision : PrecisionStudy or None
+        The virtual twin's precision study in nm (model detector; None when not run).  Its
+        ``applied_calibration`` has already been applied to ``sigma_nm``.
     """
 
     position_nm: np.ndarray
@@ -123,6 +127,7 @@ class EdgeTraces:
     noise_model: NoiseModel = field(default_factory=NoiseModel)
     rotated: bool = False
     profile_shapes: tuple = ()
+    precision: PrecisionStudy | None = None
 
     @property
     def n_edges(self) -> int:

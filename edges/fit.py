@@ -38,6 +38,7 @@ import numpy as np
 from ._nanstats import nanmean, nanmedian
 from ._noise import NoiseModel, estimate_noise, position_variance
 from ._solver import RowFit, solve_rows
+from ._twin import run_twin
 from ._types import REASON_CODES, EdgeTraces, Micrograph
 from ._windows import EdgeWindows, centre_lines, cut_windows, fit_reason_codes, rows_usable, saturation_level
 from .locate import LineLayout, locate_edges
@@ -134,15 +135,26 @@ class WeightedPass:
     var_px2: np.ndarray
 
 
-def _coarse_pass(frame: _Frame, guess_px, solve: _Solve) -> CoarsePass:
-    win = frame.windows(guess_px)
-    # grid search inside the narrowest window: every 2 px up to 3 px from its ends, or every
-    # pixel in fine-pitch windows; a plain step of 2 px blur (at most half the reach)
+def _coarse_grid(frame: _Frame) -> np.ndarray:
+    """Offsets of the coarse grid search: every 2 px up to 3 px from the narrowest window's
+    ends, or every pixel in fine-pitch windows."""
+    reach = int(min(frame.reach_left_px.min(), frame.reach_right_px.min()))
+    return np.arange(-(reach - 3), reach - 2, 2) if reach > 4 else np.arange(-(reach - 1), reach)
+
+
+def _coarse_table(frame: _Frame) -> ProfileTable:
+    """A plain step of 2 px blur (at most half the narrowest reach) for every edge."""
     reach = int(min(frame.reach_left_px.min(), frame.reach_right_px.min()))
     blur = min(2.0, 0.5 * reach)
     step = [lambda u, derivative=False: parametric_profile(u, EdgeShape(blur), derivative=derivative)]
-    table = tabulate(step * frame.n_edges, frame.table_range_px)
-    grid = np.arange(-(reach - 3), reach - 2, 2) if reach > 4 else np.arange(-(reach - 1), reach)
+    return tabulate(step * frame.n_edges, frame.table_range_px)
+
+
+def _coarse_pass(frame: _Frame, guess_px, solve: _Solve) -> CoarsePass:
+    win = frame.windows(guess_px)
+    # grid search inside the narrowest window; a plain step of 2 px blur (at most half the reach)
+    table = _coarse_table(frame)
+    grid = _coarse_grid(frame)
     fit = solve_rows(win.y, win.cols, win.mask.astype(float), table, win.edge, guess_px.ravel(),
                      grid_offsets_px=grid, max_iterations=solve.max_iterations,
                      tolerance_px=1e-2, chunk_rows=solve.chunk_rows)
@@ -335,7 +347,7 @@ def _safe_shift(centres, z, profile):
 def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window_px: int = 31,
               polarity: str = "auto", orientation: str = "auto", noise_correlation: str = "auto",
               max_iterations: int = 30, tolerance_px: float = 1e-4, chunk_rows: int = 4096,
-              layout: LineLayout | None = None) -> EdgeTraces:
+              layout: LineLayout | None = None, precision_study: bool = True) -> EdgeTraces:
     """Fit an edge-profile model to every row of every edge of a micrograph.
 
     Parameters
@@ -360,6 +372,11 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
         Rows solved together (memory stays near chunk_rows x window).
     layout : LineLayout, optional
         A location already made (skips :func:`edges.locate_edges`).
+    precision_study : bool
+        Run the image's virtual twin (:mod:`edges._twin`): re-render sampled rows from the
+        fitted imaging model at known positions, refit them, and scale the uncertainties by the
+        ratio of the real scatter to the covariance (exact only at high contrast-to-noise).
+        The study is returned in ``EdgeTraces.precision``.
 
     Returns
     -------
@@ -406,6 +423,7 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
     flags = np.array(["too_close" if not f else "" for f in fitted], dtype=object)
     noise = NoiseModel()
     shapes_all = [None] * n_all
+    study = None
     if idx.size:
         frame = _Frame(pixels=m.pixels, reach_left_px=np.array([layout.edges[i].reach_left_px for i in idx]),
                        reach_right_px=np.array([layout.edges[i].reach_right_px for i in idx]),
@@ -420,8 +438,13 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
         code = fit_reason_codes(res, win, final.var_px2, idx.size)
         valid = code == 0
         p = m.pixel_size_nm
+        var_px2 = final.var_px2
+        if precision_study:
+            study = _study(frame, coarse, shaped, noise, res, valid, var_px2, solve)
+            var_px2 = var_px2 * study.applied_calibration
+            study = study.in_nm(p).expand(idx, n_all)
         pos[idx] = np.where(valid, res.x0 * p, np.nan).reshape(idx.size, n_rows)
-        sig[idx] = np.where(valid, np.sqrt(np.abs(final.var_px2)) * p, np.nan).reshape(idx.size, n_rows)
+        sig[idx] = np.where(valid, np.sqrt(np.abs(var_px2)) * p, np.nan).reshape(idx.size, n_rows)
         chi2[idx] = (res.rss / np.clip(res.n_used - 3, 1, None)).reshape(idx.size, n_rows)
         iters[idx] = res.iterations.reshape(idx.size, n_rows)
         reason[idx] = code.reshape(idx.size, n_rows)
@@ -437,7 +460,19 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
         side=np.array([g.side for g in layout.edges]),
         row_spacing_nm=m.pixel_size_nm, reduced_chi2=chi2, iterations=iters,
         contrast_to_noise=cnr, edge_flags=flags.astype(str), detector="model", profile_model=profile_model,
-        source=m.source, noise_model=noise, rotated=m.rotated, profile_shapes=tuple(shapes_all))
+        source=m.source, noise_model=noise, rotated=m.rotated, profile_shapes=tuple(shapes_all), precision=study)
+
+
+def _study(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, noise: NoiseModel, res: RowFit, valid,
+           var_px2, solve: _Solve):
+    shape2 = (frame.n_edges, frame.n_rows)
+    return run_twin(n_cols=frame.pixels.shape[1], reach_left_px=frame.reach_left_px,
+                    reach_right_px=frame.reach_right_px, centres_px=coarse.centres_px,
+                    x0_px=res.x0.reshape(shape2), offset=res.offset.reshape(shape2), gain=res.gain.reshape(shape2),
+                    valid=valid.reshape(shape2), var_px2=var_px2.reshape(shape2), table=shaped.table, noise=noise,
+                    coarse_table=_coarse_table(frame), grid_offsets_px=_coarse_grid(frame),
+                    n_lags=2 * frame.half_max_px if noise.correlated else 0, max_iterations=solve.max_iterations,
+                    tolerance_px=solve.tolerance_px, chunk_rows=solve.chunk_rows)
 
 
 def _edge_cnr(res, valid, e_idx, n_edges, noise: NoiseModel):

@@ -174,6 +174,9 @@ class EdgeDiagnostics:
     valid_rows, invalid_rows : ndarray of int
     exclusion, flags : ndarray of str
         Why an edge was left out of the statistics, and the detector's flags.
+    achieved_sd_nm, crlb_sd_nm, shrinkage : ndarray
+        From the detector's precision study (virtual twin; NaN without one): the real scatter
+        of a row's position, the Cramer-Rao bound, and the slope of fitted on true deviation.
     """
 
     line: np.ndarray
@@ -187,6 +190,19 @@ class EdgeDiagnostics:
     invalid_rows: np.ndarray
     exclusion: np.ndarray
     flags: np.ndarray
+    achieved_sd_nm: np.ndarray = None
+    crlb_sd_nm: np.ndarray = None
+    shrinkage: np.ndarray = None
+
+    def __post_init__(self):
+        for name in ("achieved_sd_nm", "crlb_sd_nm", "shrinkage"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, np.full(np.asarray(self.line).size, np.nan))
+
+
+#: Shrinkage (slope of fitted on true deviation, from the precision study) below which the
+#: detector no longer follows the edge: the unbiased value is not reported as confident.
+MIN_SHRINKAGE = 0.9
 
 
 @dataclass(frozen=True)
@@ -261,6 +277,10 @@ class ImageAnalysis:
     row_noise_correlation : tuple of float
         Correlation of the edge-position noise between neighbouring rows (lags 1, 2, ...)
         used to colour the floor; empty when rows are independent.
+    precision_calibration : float
+        Factor the precision study applied to the fit covariance (1 when none or not run).
+    shrinkage : float
+        The detector's pooled shrinkage from the precision study (NaN without one).
     edges : EdgeDiagnostics
     invalid_rows, bridged_rows, excluded_edges : int
     reason_counts : tuple of (str, int)
@@ -291,6 +311,8 @@ class ImageAnalysis:
     plateau_check: str
     floor_at_plateau_nm3: float
     row_noise_correlation: tuple
+    precision_calibration: float
+    shrinkage: float
     edges: EdgeDiagnostics
     invalid_rows: int
     bridged_rows: int
@@ -310,16 +332,26 @@ class ImageAnalysis:
     @property
     def status(self) -> str:
         """``"below_noise"``, ``"noise_dominated"`` (the edge's noise share is above
-        :data:`roughness.stats.NOISE_DOMINATED_FRACTION`), ``"warning"`` (see ``warnings``) or
-        ``"ok"``."""
+        :data:`roughness.stats.NOISE_DOMINATED_FRACTION`, or the detector shrinks the roughness:
+        shrinkage below :data:`MIN_SHRINKAGE`), ``"warning"`` (see ``warnings``) or ``"ok"``."""
         if self.summary.edge.status in ("below_noise", "noise_dominated"):
             return self.summary.edge.status
+        if self.shrinkage < MIN_SHRINKAGE:
+            return "noise_dominated"
         return "warning" if self.warnings else "ok"
 
     def spectrum(self, quantity: str) -> SpectrumSums:
         if quantity not in QUANTITIES:
             raise ValueError(f"quantity={quantity!r}: must be one of {QUANTITIES}")
         return getattr(self, f"{quantity}_psd")
+
+
+def _precision_columns(traces: EdgeTraces) -> dict:
+    study = traces.precision
+    if study is None:
+        return {}
+    return {"achieved_sd_nm": np.asarray(study.achieved_sd, float), "crlb_sd_nm": np.asarray(study.crlb_sd, float),
+            "shrinkage": np.asarray(study.shrinkage, float)}
 
 
 def _model_complete(model) -> bool:
@@ -424,9 +456,17 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
                             var_biased_nm2=rough.edge_var_biased_nm2, var_noise_nm2=rough.edge_var_noise_nm2,
                             fit_sigma_rms_nm=rms, contrast_to_noise=np.asarray(traces.contrast_to_noise, float),
                             valid_rows=traces.valid.sum(1), invalid_rows=(~traces.valid).sum(1),
-                            exclusion=rough.edge_exclusion, flags=np.asarray(traces.edge_flags, str))
+                            exclusion=rough.edge_exclusion, flags=np.asarray(traces.edge_flags, str),
+                            **_precision_columns(traces))
+    study = traces.precision
+    shrinkage = study.shrinkage_pooled if study is not None else math.nan
     warnings = _warnings(summary, model, traces, length, n_invalid)
     warnings += _floor_warnings(disagree, check, plateau, floor_hf, traces.noise_model)
+    if shrinkage < MIN_SHRINKAGE:
+        warnings.append(("detector_shrinks", f"at this noise level the edge fit follows only {100 * shrinkage:.0f}% of "
+                                             "the edge's real excursions (precision study): the measured roughness is "
+                                             "shrunk and is not reported as a confident value; more frames or dose "
+                                             "would fix it"))
     if traces.detector in ("threshold", "slope"):
         warnings.append(("baseline_detector", f"{traces.detector} detector: its noise floor is a linearised "
                                               "estimate, and at low contrast-to-noise it shrinks real roughness"))
@@ -440,7 +480,8 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
         centre_psd=_sums(rough.centre, length), psd_model=model, model_sigma_finite_nm=finite,
         acf_correlation_length_nm=xi_acf, noise_floor_nm3=floor, plateau_nm3=plateau, plateau_sd_nm3=plateau_sd,
         floors_disagree=disagree, plateau_check=check, floor_at_plateau_nm3=floor_hf,
-        row_noise_correlation=tuple(traces.noise_model.row_correlation), edges=edges, invalid_rows=n_invalid, bridged_rows=rough.bridged_rows,
+        row_noise_correlation=tuple(traces.noise_model.row_correlation),
+        precision_calibration=study.applied_calibration if study is not None else 1.0, shrinkage=shrinkage, edges=edges, invalid_rows=n_invalid, bridged_rows=rough.bridged_rows,
         excluded_edges=int(np.count_nonzero(rough.edge_exclusion != "")),
         reason_counts=tuple(traces.reason_counts().items()),
         advice=_advice(summary, model, length, rough.row_spacing_nm, options), warnings=tuple(warnings))

@@ -70,7 +70,8 @@ def summary_table(meas) -> pd.DataFrame:
         row.update({
             "edge_sigma_model_finite_nm": a.model_sigma_finite_nm,
             "noise_floor_nm3": a.noise_floor_nm3, "plateau_nm3": a.plateau_nm3, "floors_disagree": a.floors_disagree,
-            "plateau_check": a.plateau_check,
+            "plateau_check": a.plateau_check, "precision_calibration": a.precision_calibration,
+            "shrinkage": a.shrinkage,
             "row_noise_correlation": a.row_noise_correlation[0] if a.row_noise_correlation else 0.0,
             "rows": a.n_rows, "invalid_rows": a.invalid_rows, "bridged_rows": a.bridged_rows,
             "excluded_edges": a.excluded_edges, "detector": a.detector, "profile_model": a.profile_model,
@@ -109,7 +110,8 @@ def edges_table(meas) -> pd.DataFrame:
                 "var_unbiased_nm2": vu, "fit_sigma_rms_nm": d.fit_sigma_rms_nm,
                 "contrast_to_noise": d.contrast_to_noise, "valid_rows": d.valid_rows.astype(int),
                 "invalid_rows": d.invalid_rows.astype(int), "exclusion": d.exclusion.astype(str),
-                "flags": d.flags.astype(str)}))
+                "flags": d.flags.astype(str), "achieved_sd_nm": d.achieved_sd_nm, "crlb_sd_nm": d.crlb_sd_nm,
+                "shrinkage": d.shrinkage}))
     if not parts:
         return pd.DataFrame(columns=EDGE_COLUMNS)
     return pd.concat(parts, ignore_index=True)[EDGE_COLUMNS]
@@ -148,14 +150,14 @@ def _columns():
     stats = list(_stat_columns(s, None, SamplingAdvice()))
     summary = ["image", "group"] + stats + [
         "edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "plateau_check",
-        "row_noise_correlation", "rows", "invalid_rows", "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
+        "row_noise_correlation", "precision_calibration", "shrinkage", "rows", "invalid_rows", "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
     return summary, ["group", "n_images"] + stats + ["psd_grids"]
 
 
 SUMMARY_COLUMNS, GROUP_COLUMNS = _columns()
 EDGE_COLUMNS = ["image", "edge", "line", "side", "mean_position_nm", "sigma_biased_nm", "sigma_noise_nm",
                 "sigma_unbiased_nm", "var_unbiased_nm2", "fit_sigma_rms_nm", "contrast_to_noise", "valid_rows",
-                "invalid_rows", "exclusion", "flags"]
+                "invalid_rows", "exclusion", "flags", "achieved_sd_nm", "crlb_sd_nm", "shrinkage"]
 PSD_COLUMNS = ["quantity", "frequency_per_nm", "psd_biased_nm3", "noise_floor_nm3", "psd_unbiased_nm3",
                "psd_model_nm3", "n_traces", "n_images"]
 
