@@ -202,7 +202,8 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     """var(signal) = c0 + c1 * signal from unweighted residuals, pooled over the image.
 
     Each squared residual is divided by (1 - h_ii), h the row's hat matrix for (x0, offset,
-    gain), so that pixels of high leverage (on the edge) are not under-counted.  With a
+    gain), so that pixels of high leverage (on the edge) are not under-counted; with noise
+    correlated along the scan by [(I - H) R (I - H)]_ii, its expectation over the variance.  With a
     first-order detector filter of coefficient a along the scan (left to right), a pixel's
     noise variance follows the *filtered* signal (1 - a^2) sum_k a^(2k) m_(n-k), which is what
     is regressed on then (shot noise from a bright side spills into the dark side).
@@ -229,13 +230,23 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     Ginv = np.zeros_like(G)
     Ginv[good_rows] = np.linalg.inv(G[good_rows])
     lev = np.einsum("nia,nab,nib->ni", X, Ginv, X)
+    keep = 1.0 - lev
+    if scan_filter > 0:
+        # E[r_i^2] = [(I - H) R (I - H)]_ii var_i for noise correlated as R = a^|i-j|: the fit's
+        # offset takes up more of a correlated noise than 1 - h_ii says
+        lag = np.abs(np.subtract.outer(np.arange(X.shape[1]), np.arange(X.shape[1])))
+        R = scan_filter ** lag
+        XtR = np.einsum("nwa,wv->nav", X, R)
+        hr = np.einsum("nia,nab,nbi->ni", X, Ginv, XtR)
+        hrh = np.einsum("nia,nab,nbc,ncd,nid->ni", X, Ginv, XtR @ X, Ginv, X)
+        keep = 1.0 - 2.0 * hr + hrh
     with np.errstate(divide="ignore", invalid="ignore"):
-        r2 = (win.y - fitted) ** 2 / (1.0 - lev)
+        r2 = (win.y - fitted) ** 2 / keep
     ok = good_rows
     if scan_filter > 0:
         a2 = scan_filter ** 2
         model, _ = signal.lfilter([1 - a2], [1.0, -a2], model, axis=1, zi=a2 * model[:, :1])
-    use = ok[:, None] & win.mask & (lev < 0.95)
+    use = ok[:, None] & win.mask & (lev < 0.95) & (keep > 0.05)
     m, v = model[use], r2[use]
     if m.size < 50:
         return 0.0, 1.0, model

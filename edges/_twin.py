@@ -65,19 +65,21 @@ def _windows(y_ext, ext_first, centres, reach_l, reach_r, n_cols, edge):
 
 
 def _noise_rows(rng, mean, var, noise: NoiseModel):
-    """Fresh noise of the image's law on rows of mean ``mean``: Poisson-like (the variance's
-    own skew) for independent pixels with a shot-noise term, else Gaussian filtered along the
-    scan with the image's first-order coefficient (stationary start)."""
-    a = noise.scan_correlation
+    """Fresh noise of the image's law on rows of mean ``mean``: white noise of variance ``var``
+    per pixel (Poisson-like, with the counts' own skew, where the law has a shot-noise term;
+    Gaussian otherwise), then the detector's first-order filter along the scan with unit gain on
+    the variance (stationary start), as the noise passes the detector chain."""
     c1 = noise.variance_per_signal
-    if a == 0.0 and c1 > 0 and np.isfinite(c1):
+    if c1 > 0 and np.isfinite(c1):
         lam = var / (c1 * c1)
-        return mean + c1 * (rng.poisson(lam) - lam)
-    z = rng.standard_normal(mean.shape)
+        white = c1 * (rng.poisson(lam) - lam)
+    else:
+        white = np.sqrt(var) * rng.standard_normal(mean.shape)
+    a = noise.scan_correlation
     if a != 0.0:
         c = math.sqrt(1 - a * a)
-        z, _ = _signal.lfilter([c], [1.0, -a], z, axis=1, zi=(1 - c) * z[:, :1])
-    return mean + np.sqrt(var) * z
+        white, _ = _signal.lfilter([c], [1.0, -a], white, axis=1, zi=(1 - c) * white[:, :1])
+    return mean + white
 
 
 def _crlb(table, edge, u, gain, var, mask, a_scan):

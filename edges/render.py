@@ -5,7 +5,8 @@ Each row is one scan across vertical lines.  The expected secondary-electron yie
 ``space_level`` outside the lines, ``line_level`` on them, plus a bright Gaussian peak of height
 ``edge_peak`` and standard deviation ``edge_peak_width_nm`` sitting ``edge_peak_offset_nm`` inside
 each edge (the sidewall), all convolved with a Gaussian beam of standard deviation ``blur_nm`` and
-integrated over the pixel width (box of one pixel; exact closed forms, no supersampling).
+integrated over the pixel width (box of one pixel; exact closed forms, no supersampling;
+the sloped sidewall of the "trapezoid" family by 16-node quadrature).
 Counts are ``dose * yield`` electrons (Poisson when ``shot_noise``), times ``gain``, plus a black
 level and Gaussian read noise.  Optional: noise correlated along the scan (AR(1) of coefficient
 ``scan_correlation``, marginal variance kept), a slow brightness gradient across the field,
@@ -24,7 +25,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import signal, special
 
-__all__ = ["SEMSettings", "render_micrograph", "expected_row_profile"]
+__all__ = ["SEMSettings", "render_micrograph", "expected_row_profile", "PROFILES"]
 
 
 @dataclass(frozen=True)
@@ -65,6 +66,21 @@ class SEMSettings:
         ``"bright"`` (line tops brighter than the substrate) or ``"dark"`` (levels swapped).
     horizontal : bool
         Return the image transposed, with the lines running along the scan.
+    profile : str
+        Line-scan family: ``"default"`` (blurred step plus edge peak, above); ``"trapezoid"``
+        (the yield climbs linearly over a sloped sidewall of ``sidewall_nm`` from the foot at the
+        edge, peak at the top corner); ``"halo"`` (a dark dip of relative depth ``halo`` just
+        outside the line foot, as charging or a shadowing detector leave); ``"asymmetric"``
+        (the right sidewall ``asymmetry`` times blurrier with a peak ``1 / asymmetry`` as high,
+        as from a detector on one side).
+    sidewall_nm, halo, asymmetry : float
+        Parameters of those families.
+    vignetting : float
+        Relative brightness loss at the corners of the field (quadratic in the distance from
+        the centre).
+    quantise_bits : int
+        0 for real-valued grey levels; 8 or 16 to round and clip to that many bits (as the
+        detector's converter does; file writing converts separately).
     """
 
     pixel_size_nm: float = 1.0
@@ -85,6 +101,15 @@ class SEMSettings:
     tilt_deg: float = 0.0
     polarity: str = "bright"
     horizontal: bool = False
+    profile: str = "default"
+    sidewall_nm: float = 4.0
+    halo: float = 0.3
+    asymmetry: float = 1.6
+    vignetting: float = 0.0
+    quantise_bits: int = 0
+
+#: Line-scan families of the renderer (see :class:`SEMSettings`).
+PROFILES = ("default", "trapezoid", "halo", "asymmetric")
 
 
 def _validate_settings(s: SEMSettings) -> None:
@@ -97,6 +122,12 @@ def _validate_settings(s: SEMSettings) -> None:
         raise ValueError(f"scan_correlation={s.scan_correlation}: must be in [0, 1)")
     if s.polarity not in ("bright", "dark"):
         raise ValueError(f"polarity={s.polarity!r}: must be 'bright' or 'dark'")
+    if s.profile not in PROFILES:
+        raise ValueError(f"profile={s.profile!r}: must be one of {PROFILES}")
+    if s.quantise_bits not in (0, 8, 16):
+        raise ValueError(f"quantise_bits={s.quantise_bits}: must be 0, 8 or 16")
+    if s.sidewall_nm <= 0 or s.asymmetry <= 0 or not 0 <= s.vignetting < 1:
+        raise ValueError("sidewall_nm and asymmetry must be > 0 and vignetting in [0, 1)")
     if abs(s.tilt_deg) > 10:
         raise ValueError(f"tilt_deg={s.tilt_deg}: at most 10 degrees (a shear model of a rotation)")
 
@@ -138,14 +169,32 @@ def expected_row_profile(columns_nm, left_nm, right_nm, settings: SEMSettings) -
     hi, lo = (s.line_level, s.space_level) if s.polarity == "bright" else (s.space_level, s.line_level)
     p = s.pixel_size_nm
     x = np.asarray(columns_nm, float)
-    inside = _box_blurred_step(x - left_nm, s.blur_nm, p) - _box_blurred_step(x - right_nm, s.blur_nm, p)
+    blur_r = s.blur_nm * (s.asymmetry if s.profile == "asymmetric" else 1.0)
+    if s.profile == "trapezoid":
+        # a linear ramp over the sidewall = the mean of blurred steps spread over it (midpoint
+        # quadrature, 16 nodes: error well below the noise of any dose)
+        t = (np.arange(16) + 0.5) / 16 * s.sidewall_nm
+        up = np.mean([_box_blurred_step(x - left_nm - ti, s.blur_nm, p) for ti in t], axis=0)
+        down = np.mean([_box_blurred_step(x - right_nm + ti, s.blur_nm, p) for ti in t], axis=0)
+        inside = up - down
+    else:
+        inside = _box_blurred_step(x - left_nm, s.blur_nm, p) - _box_blurred_step(x - right_nm, blur_r, p)
     out = lo + (hi - lo) * inside.sum(axis=-1)
     if s.edge_peak:
         sd = math.hypot(s.edge_peak_width_nm, s.blur_nm)
+        sd_r = math.hypot(s.edge_peak_width_nm, blur_r)
         area = s.edge_peak * s.edge_peak_width_nm * math.sqrt(2 * math.pi)
-        peaks = (_box_gaussian(x - (left_nm + s.edge_peak_offset_nm), sd, p)
-                 + _box_gaussian(x - (right_nm - s.edge_peak_offset_nm), sd, p))
-        out = out + area * peaks.sum(axis=-1)
+        area_r = area / (s.asymmetry if s.profile == "asymmetric" else 1.0)
+        off = s.edge_peak_offset_nm + (s.sidewall_nm if s.profile == "trapezoid" else 0.0)
+        peaks = (area * _box_gaussian(x - (left_nm + off), sd, p)
+                 + area_r * _box_gaussian(x - (right_nm - off), sd_r, p))
+        out = out + peaks.sum(axis=-1)
+    if s.profile == "halo":
+        # a dip just outside each foot, 1.5 blur widths out, of depth ``halo`` times the contrast
+        sd = max(s.blur_nm, 0.5 * p) * 1.5
+        dip = s.halo * abs(hi - lo) * sd * math.sqrt(2 * math.pi)
+        out = out - dip * (_box_gaussian(x - (left_nm - 1.5 * sd), sd, p)
+                           + _box_gaussian(x - (right_nm + 1.5 * sd), sd, p)).sum(axis=-1)
     return out
 
 
@@ -213,6 +262,9 @@ def render_micrograph(left_nm, right_nm, *, n_cols: int, settings: SEMSettings =
                                           right.T[sl, None, :], s)
     if s.gradient:
         yield_ *= 1.0 + s.gradient * (cols_nm / cols_nm[-1] - 0.5)
+    if s.vignetting:
+        r2 = ((cols_nm / cols_nm[-1] - 0.5) ** 2)[None, :] + ((rows / max(n_rows - 1, 1) - 0.5) ** 2)[:, None]
+        yield_ *= 1.0 - s.vignetting * r2 / 0.5
     if s.row_jitter:
         yield_ *= 1.0 + s.row_jitter * rng.standard_normal((n_rows, 1))
     expected = s.dose_per_pixel * yield_
@@ -230,6 +282,8 @@ def render_micrograph(left_nm, right_nm, *, n_cols: int, settings: SEMSettings =
         # started so that the first sample keeps its own variance (stationary from column 0)
         noise, _ = signal.lfilter([c], [1.0, -a], noise, axis=1, zi=(1 - c) * noise[:, :1])
     pixels = s.black_level + s.gain * expected + noise
+    if s.quantise_bits:
+        pixels = np.clip(np.rint(pixels), 0, 2 ** s.quantise_bits - 1)
     edges = np.empty((2 * n_lines, n_rows))
     edges[0::2], edges[1::2] = left, right
     order = np.argsort(edges.mean(axis=1))

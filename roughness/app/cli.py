@@ -41,6 +41,12 @@ _SEM_OPTIONS = [
     ("--gradient", "gradient", float, "relative brightness change from left to right border"),
     ("--row-jitter", "row_jitter", float, "relative standard deviation of a per-row brightness factor"),
     ("--tilt-deg", "tilt_deg", float, "tilt of the lines from the scan normal, degrees"),
+    ("--line-scan", "profile", str, "line-scan family: default, trapezoid, halo or asymmetric"),
+    ("--sidewall-nm", "sidewall_nm", float, "width of the sloped sidewall of the trapezoid family, nm"),
+    ("--halo", "halo", float, "depth of the dark halo outside the line foot (halo family), share of the contrast"),
+    ("--asymmetry", "asymmetry", float, "blur ratio of right to left sidewall (asymmetric family)"),
+    ("--vignetting", "vignetting", float, "relative brightness loss at the corners of the field, 0 to <1"),
+    ("--quantise-bits", "quantise_bits", int, "round and clip grey levels to 8 or 16 bits in the detector (0: no)"),
 ]
 
 

@@ -105,3 +105,34 @@ def test_render_rejects_bad_input(rng):
         render_micrograph([[5.0]], [[4.0]], n_cols=20, rng=rng)
     with pytest.raises(ValueError, match="scan_correlation"):
         render_micrograph([[5.0, 5]], [[9.0, 9]], n_cols=20, settings=SEMSettings(scan_correlation=1.0), rng=rng)
+
+
+def test_alternative_line_scan_families():
+    from edges.render import SEMSettings, expected_row_profile, render_micrograph
+    cols = np.arange(0.0, 80.0, 0.5)[:, None]
+    base = SEMSettings(edge_peak=0.4)
+    prof = lambda **kw: expected_row_profile(cols, np.array([20.0]), np.array([60.0]),   # noqa: E731
+                                             SEMSettings(**{**base.__dict__, **kw}))
+    # a trapezoid with a vanishing sidewall is the default step (the quadrature is consistent)
+    np.testing.assert_allclose(prof(profile="trapezoid", sidewall_nm=1e-4), prof(), atol=1e-5)
+    # a sloped sidewall reaches the half level later (half the sidewall, to first order)
+    half = 0.5 * (base.space_level + base.line_level)
+    def crossing(p):
+        i = int(np.argmax(p > half))
+        return float(np.interp(half, p[i - 1:i + 1], cols[i - 1:i + 1, 0]))
+    no_peak = dict(edge_peak=0.0)
+    assert crossing(prof(profile="trapezoid", sidewall_nm=6.0, **no_peak)) == pytest.approx(23.0, abs=0.1)
+    # the halo dips below the space level outside the foot; the asymmetric right edge is blurrier
+    assert prof(profile="halo").min() < base.space_level - 0.01
+    sym, asym = prof(edge_peak=0.0), prof(profile="asymmetric", edge_peak=0.0)
+    np.testing.assert_allclose(asym[:80], sym[:80], atol=1e-12)         # left edge unchanged
+    assert not np.allclose(asym[80:], sym[80:])
+    # 8-bit output is integral and clipped; vignetting darkens the corners by the stated share
+    left = np.full((1, 64), 30.0)
+    px, _ = render_micrograph(left, left + 30, n_cols=96, rng=np.random.default_rng(0),
+                              settings=SEMSettings(quantise_bits=8, dose_per_pixel=400, gain=0.7))
+    assert px.min() >= 0 and px.max() <= 255 and np.all(px == np.rint(px))
+    flat = SEMSettings(shot_noise=False, edge_peak=0.0, black_level=0.0, vignetting=0.2)
+    px, _ = render_micrograph(np.full((1, 65), 200.0), np.full((1, 65), 210.0), n_cols=65,
+                              rng=np.random.default_rng(0), settings=flat)
+    assert px[0, 0] / px[32, 32] == pytest.approx(0.8, rel=1e-6)
