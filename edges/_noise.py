@@ -282,19 +282,27 @@ def _scan_correlation(win, res, ok, var, table):
     fit removes the offset, so a constant added to every lag leaves the residuals unchanged.
     Returns gamma0 (variance scale of the noise model), a, and its standard error.
     """
-    width = win.y.shape[1]
-    full = np.flatnonzero(ok & (win.mask.sum(1) == width))
-    if full.size < 200:
+    # rows whose windows share the most common extent (edges reach differently to the left and
+    # right, and windows at the border are cut), compressed to that extent
+    cand = np.flatnonzero(ok)
+    if cand.size < 200:
+        return 1.0, 0.0, np.inf
+    patterns, inverse, counts = np.unique(win.mask[cand], axis=0, return_inverse=True, return_counts=True)
+    best = int(np.argmax(counts))
+    cols_used = np.flatnonzero(patterns[best])
+    full = cand[np.ravel(inverse) == best]
+    width = cols_used.size
+    if full.size < 200 or width < 6 or np.ptp(cols_used) != width - 1:
         return 1.0, 0.0, np.inf
     sample = full if full.size <= 1500 else np.random.default_rng(_SUBSAMPLE_SEED).choice(full, 1500, replace=False)
     sample.sort()
-    mu, dmu = table.evaluate(win.edge[sample], win.cols[sample] - res.x0[sample, None])
+    mu, dmu = table.evaluate(win.edge[sample], win.cols[sample][:, cols_used] - res.x0[sample, None])
     X = np.stack([-res.gain[sample, None] * dmu, np.ones_like(mu), mu], axis=2)
     Xt = np.swapaxes(X, 1, 2)
     H = X @ np.linalg.solve(Xt @ X, Xt)
-    d = np.sqrt(var[sample])
+    d = np.sqrt(var[sample][:, cols_used])
     M = (np.eye(width)[None] - H) * d[:, None, :] / d[:, :, None]
-    e = (win.y[sample] - res.offset[sample, None] - res.gain[sample, None] * mu) / d
+    e = (win.y[sample][:, cols_used] - res.offset[sample, None] - res.gain[sample, None] * mu) / d
     n_k = min(10, width - 4)
     c_hat = np.array([np.sum(e[:, :width - k] * e[:, k:]) for k in range(n_k + 1)])
     B = [M[:, :width - k, :].reshape(-1, width).T @ M[:, k:, :].reshape(-1, width) for k in range(n_k + 1)]

@@ -97,7 +97,9 @@ def run(c, seed):
     settings = SEMSettings(**{"pixel_size_nm": p, **c["sem"]})
     pixels, truth = render_micrograph(centres[:, None] - 0.5 * cd + dl, centres[:, None] + 0.5 * cd + dr,
                                       n_cols=n_cols, settings=settings, rng=rng)
-    traces = fit_edges(Micrograph(pixels=pixels, pixel_size_nm=p, source=c["name"]))
+    # the user names dark lines (a blurred profile cannot tell them from rimmed bright ones)
+    traces = fit_edges(Micrograph(pixels=pixels, pixel_size_nm=p, source=c["name"]),
+                       polarity=c["sem"].get("polarity", "bright"))
     a = analyse_image(traces, AnalysisOptions(n_resamples=300, model_resamples=0, seed=seed))
     # the realised truth of the edges (and lines) that were measured
     true_mean = truth["edge_nm"].mean(axis=1)
