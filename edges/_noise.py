@@ -287,11 +287,14 @@ def _scan_correlation(win, res, ok, var, table):
     cand = np.flatnonzero(ok)
     if cand.size < 200:
         return 1.0, 0.0, np.inf
-    patterns, inverse, counts = np.unique(win.mask[cand], axis=0, return_inverse=True, return_counts=True)
-    best = int(np.argmax(counts))
-    cols_used = np.flatnonzero(patterns[best])
-    full = cand[np.ravel(inverse) == best]
-    width = cols_used.size
+    m = win.mask[cand]
+    count = m.sum(1)
+    key = np.argmax(m, axis=1) * (m.shape[1] + 1) + count        # (first pixel, pixels) of a window
+    keys, counts = np.unique(key, return_counts=True)
+    best = int(keys[np.argmax(counts)])
+    first, width = divmod(best, m.shape[1] + 1)
+    cols_used = np.arange(first, first + width)
+    full = cand[(key == best) & m[:, first:first + width].all(axis=1)] if width else cand[:0]
     if full.size < 200 or width < 6 or np.ptp(cols_used) != width - 1:
         return 1.0, 0.0, np.inf
     sample = full if full.size <= 1500 else np.random.default_rng(_SUBSAMPLE_SEED).choice(full, 1500, replace=False)
