@@ -125,6 +125,14 @@ def _run_twin(*, n_cols, reach_left_px, reach_right_px, centres_px, x0_px, offse
               chunk_rows) -> PrecisionStudy:
     rng = np.random.default_rng(_TWIN_SEED)
     n_e, n_rows = centres_px.shape
+    # the centre lines on the positions' own reference (the half-level point of the profile,
+    # which a bright rim may move from the plain-step crossing the centre lines were found on)
+    with np.errstate(invalid="ignore"):
+        shift = np.array([np.nanmedian(np.where(valid[e], x0_px[e] - centres_px[e], np.nan)) if valid[e].any()
+                          else 0.0 for e in range(n_e)])
+    shift = np.nan_to_num(shift)
+    coarse_centres = centres_px
+    centres_px = centres_px + shift[:, None]
     reach_l = np.asarray(reach_left_px, np.int64)
     reach_r = np.asarray(reach_right_px, np.int64)
     hmax = int(max(reach_l.max(), reach_r.max()))
@@ -170,13 +178,15 @@ def _run_twin(*, n_cols, reach_left_px, reach_right_px, centres_px, x0_px, offse
     var_true = noise.variance_scale * noise.variance(mean)
     y_ext = _noise_rows(rng, mean, var_true, noise)
     solve = dict(max_iterations=max_iterations, tolerance_px=tolerance_px, chunk_rows=chunk_rows)
-    # 1. the coarse pass: a plain step, grid-searched, on windows about the centre line; then
-    # the image's profile from there
-    win = _windows(y_ext, ext_first, centre, reach_l, reach_r, n_cols, edge)
-    fit = solve_rows(win.y, win.cols, win.mask.astype(float), coarse_table, edge, centre,
+    # 1. the coarse pass: a plain step, grid-searched, on windows about the (plain-step) centre
+    # line; then the image's profile from there, moved by the edge's offset between the two
+    # references (a rim moves the profile's half-level point off the plain-step crossing)
+    plain = coarse_centres[edge, rows]
+    win = _windows(y_ext, ext_first, plain, reach_l, reach_r, n_cols, edge)
+    fit = solve_rows(win.y, win.cols, win.mask.astype(float), coarse_table, edge, plain,
                      grid_offsets_px=grid_offsets_px, tolerance_px=1e-2, max_iterations=max_iterations,
                      chunk_rows=chunk_rows)
-    start = np.where(np.isfinite(fit.x0) & win.inside(fit.x0), fit.x0, centre)
+    start = np.where(np.isfinite(fit.x0) & win.inside(fit.x0), fit.x0, plain) + shift[edge]
     fit = solve_rows(win.y, win.cols, win.mask.astype(float), table, edge, start, **solve)
     # 2. unweighted on windows about that estimate (the realigned pass)
     start = np.where(np.isfinite(fit.x0) & win.inside(fit.x0), fit.x0, centre)

@@ -71,7 +71,7 @@ def plot_precision(ax, edges):
     and the fit's rms uncertainty as reported; returns ``ax``."""
     k = np.arange(np.asarray(edges.line).size)
     ax.plot(k, edges.achieved_sd_nm, "o", ms=4, color=_C["biased"], label="achieved (virtual twin)")
-    ax.plot(k, edges.crlb_sd_nm, "_", ms=10, mew=2, color=_C["model"], label="Cramer-Rao bound")
+    ax.plot(k, edges.crlb_sd_nm, "_", ms=10, mew=2, color=_C["model"], label="Cramér–Rao bound")
     ax.plot(k, edges.fit_sigma_rms_nm, "x", ms=4, color=_C["unbiased"], label="reported uncertainty (rms)")
     ax.set_xlabel("edge (left to right)")
     ax.set_ylabel("position sd of one row (nm)")
@@ -87,10 +87,11 @@ def _precision_text(a) -> str:
         return ""
     ach, bound = float(np.nanmedian(d.achieved_sd_nm)), float(np.nanmedian(d.crlb_sd_nm))
     eff = (bound / ach) ** 2 if ach > 0 else math.nan
+    reach = ("attains the bound (within the study's sampling error of a few per cent)" if eff >= 0.97
+             else f"draws {_pct(eff)} of the information the image holds")
     text = (f"Precision of this image (virtual twin): one row places an edge to {_fmt(ach, 3)} nm (1&sigma;, "
-            f"median over edges); the Cramer-Rao bound at this dose and contrast is {_fmt(bound, 3)} nm, so the fit "
-            f"reaches {_pct(eff)} of the best possible information. Shrinkage {_fmt(a.shrinkage, 3)} "
-            "(1 = the fit follows the edge fully).")
+            f"median over edges); the Cram&eacute;r&ndash;Rao bound at this dose and contrast is {_fmt(bound, 3)} nm: "
+            f"the fit {reach}. Shrinkage {_fmt(a.shrinkage, 3)} (1 = the fit follows the edge fully).")
     if a.precision_calibration != 1.0:
         text += (f" The fit's linearised uncertainties were scaled by {_fmt(a.precision_calibration, 2)} in variance "
                  "to match the real scatter.")
