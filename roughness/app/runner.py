@@ -11,7 +11,6 @@ import glob
 import hashlib
 import json
 import os
-import pickle
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
@@ -21,6 +20,7 @@ from edges import EdgeTraces, Micrograph, MicrographError, fit_edges, read_micro
 
 from ..analysis import GroupAnalysis, ImageAnalysis, analyse_group, analyse_image
 from .settings import MeasureSettings
+from .store import StoreError, load_result, save_result
 from .tables import write_outputs
 
 __all__ = ["ImageResult", "Measurement", "measure", "expand_inputs", "IMAGE_SUFFIXES"]
@@ -158,7 +158,9 @@ def _safe_measure(args):
 class _Cache:
     """One file per measured image, written as soon as it is done, so that an interrupted batch
     loses nothing and ``resume`` measures only what is missing.  Keys hash the image name, its
-    group and every setting, so a changed recipe is measured afresh."""
+    group and every setting, so a changed recipe is measured afresh.  Files are ``.npz`` read
+    without pickle (:mod:`roughness.app.store`): nothing in the folder is ever executed, and a
+    file that is not a stored result (or a leftover ``.pkl`` of an older version) is ignored."""
 
     def __init__(self, folder, resume):
         self.folder = Path(folder)
@@ -168,24 +170,19 @@ class _Cache:
     def _path(self, job):
         item, k, settings, group = job
         text = json.dumps({"image": _name(item, k), "group": group, "settings": asdict(settings)}, sort_keys=True)
-        return self.folder / f"{hashlib.sha1(text.encode()).hexdigest()[:20]}.pkl"
+        return self.folder / f"{hashlib.sha1(text.encode()).hexdigest()[:20]}.npz"
 
     def load(self, job):
         path = self._path(job)
         if self.resume and path.exists():
             try:
-                with open(path, "rb") as fh:
-                    return pickle.load(fh)
-            except Exception:      # a truncated file from a killed run: measure again
+                return load_result(path)
+            except StoreError:     # a truncated or foreign file: measure again
                 return None
         return None
 
     def store(self, job, result):
-        path = self._path(job)
-        tmp = path.with_suffix(".tmp")
-        with open(tmp, "wb") as fh:
-            pickle.dump(result, fh, protocol=pickle.HIGHEST_PROTOCOL)
-        tmp.replace(path)          # atomic: a reader never sees half a result
+        save_result(self._path(job), result)   # atomic: a reader never sees half a result
 
 
 def measure(images=None, *, groups: dict | None = None, settings: MeasureSettings | None = None,

@@ -1,6 +1,7 @@
 """The measure command end to end: numbers against truth, the output contract, the report."""
 import json
 import math
+import os
 import re
 from html.parser import HTMLParser
 
@@ -163,7 +164,8 @@ def test_results_stream_to_disk_and_resume(tmp_path, rng, monkeypatch):
     out = tmp_path / "out"
     args = ["measure", str(tmp_path / "in"), "--out", str(out), "--quiet", "--no-report", "--resamples", "100"]
     assert main(args) == 0
-    assert len(list((out / "per_image").glob("*.pkl"))) == 2
+    stored = sorted((out / "per_image").glob("*.npz"))
+    assert len(stored) == 2
     first = pd.read_csv(out / "summary.csv")
     # a resumed run measures nothing again: make measuring impossible and compare
     import roughness.app.runner as rm
@@ -176,6 +178,17 @@ def test_results_stream_to_disk_and_resume(tmp_path, rng, monkeypatch):
     pd.testing.assert_frame_equal(pd.read_csv(out / "summary.csv"), first)
     # a changed recipe is not taken from the cache (the refusing measurer records failures)
     assert main(args + ["--resume", "--detrend", "mean"]) == 3
+    # a file planted in the store is never executed: a pickle that would run code on loading,
+    # put where a stored result was, makes that image be measured again (refused here: exit 3)
+    import pickle
+
+    class Planted:
+        def __reduce__(self):
+            return (os.system, ("touch " + str(tmp_path / "executed"),))
+
+    stored[0].write_bytes(pickle.dumps(Planted()))
+    assert main(args + ["--resume"]) == 3
+    assert not (tmp_path / "executed").exists()
 
 
 def test_set_and_group_statistics_are_computed_once_and_projected(tmp_path, rng, monkeypatch):
