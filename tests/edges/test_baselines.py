@@ -1,6 +1,5 @@
 """Bad pixels, saturation and the layering rule."""
 from dataclasses import replace
-from pathlib import Path
 
 import numpy as np
 

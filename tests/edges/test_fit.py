@@ -7,7 +7,7 @@ from scipy import optimize
 
 from edges._solver import solve_rows
 from edges.baselines import threshold_edges
-from edges.fit import LOW_CONTRAST_CNR, fit_edges
+from edges.fit import fit_edges
 from edges.profiles import EdgeShape, parametric_profile, tabulate
 from edges.render import expected_row_profile
 
@@ -49,7 +49,7 @@ def test_other_profile_gives_constant_offset_only(rng, model):
     # 3.5 nm (not a Gaussian blur) with rims.  A constant offset per edge is allowed; the error
     # must not follow the edge around (scatter < 0.02 px).
     m1, truth, s = line_space(rng, n_rows=400, n_cols=200, shot_noise=False, blur_nm=1.2)
-    from edges.render import SEMSettings, render_micrograph
+    from edges.render import render_micrograph
     from dataclasses import replace
     s2 = replace(s, blur_nm=3.5)
     px2, _ = render_micrograph(truth["left_nm"], truth["right_nm"], n_cols=200, settings=s2, rng=rng)

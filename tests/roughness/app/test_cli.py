@@ -1,7 +1,6 @@
 """The command line, called as main([...]) with temporary folders."""
 from dataclasses import fields
 
-import numpy as np
 import pytest
 
 from edges.io import read_micrograph, read_truth
