@@ -93,3 +93,19 @@ def test_tilt_beyond_the_measured_range_is_refused_with_the_angle(rng):
     m, _, _ = line_space(rng, n_rows=512, n_cols=300, tilt_deg=8.0, dose_per_pixel=60)
     with pytest.raises(LocateError, match=r"virtual: the lines are tilted by (7\.[6-9]|8\.[0-4]) degrees"):
         locate_edges(m)
+
+
+def test_grating_ending_inside_the_image_is_measured(rng):
+    # four lines in the left half, bare substrate in the right half: every line is whole, and the
+    # last edge's window reaches into the substrate as far as the image allows
+    from edges import SEMSettings, render_micrograph
+    from roughness.synth import edge_pairs
+    centres = 30.0 + 40.0 * np.arange(4)
+    dl, dr = edge_pairs(4, 256, 1.0, sigma_nm=1.5, correlation_length_nm=10.0, roughness_exponent=0.6, rng=rng)
+    px, truth = render_micrograph(centres[:, None] - 10 + dl, centres[:, None] + 10 + dr, n_cols=400,
+                                  settings=SEMSettings(dose_per_pixel=100, edge_peak=0.0), rng=rng)
+    lay = locate_edges(Micrograph(px, 1.0))
+    assert len(lay.edges) == 8 and lay.dropped_partial_lines == 0
+    # the coarse columns within the reach of the fit (roughness 1.5 nm averages out over 256 rows)
+    np.testing.assert_allclose([e.column_px for e in lay.edges], truth["edge_nm"].mean(axis=1), atol=2)
+    assert lay.edges[-1].reach_right_px == 15      # half the requested 31-px window: nothing beside it
