@@ -105,6 +105,9 @@ class EdgeTraces:
     profile_shapes : tuple
         Per edge, the :class:`edges.profiles.EdgeShape` fitted by the model detector (None for
         edges not fitted and for the baselines).
+    bar_rows : tuple of int
+        Rows of an information bar cut from the top and bottom of the image before measuring
+        (the traces' rows are the image's rows below the top ones).
     precision : PrecisionStudy or None
         The virtual twin's precision study in nm (model detector; None when not run).  Its
         ``applied_calibration`` has already been applied to ``sigma_nm``.
@@ -128,6 +131,7 @@ class EdgeTraces:
     rotated: bool = False
     profile_shapes: tuple = ()
     precision: PrecisionStudy | None = None
+    bar_rows: tuple = (0, 0)
 
     @property
     def n_edges(self) -> int:

@@ -128,7 +128,7 @@ def _detect(micrograph, *, mode, level, window_px, n_plateau_px, polarity, orien
         side=np.array([g.side for g in layout.edges]), row_spacing_nm=m.pixel_size_nm,
         reduced_chi2=np.full((n_all, n_rows), np.nan), iterations=np.zeros((n_all, n_rows), np.int64),
         contrast_to_noise=cnr, edge_flags=flags.astype(str), detector=mode, profile_model="", source=m.source,
-        noise_model=NoiseModel(), rotated=m.rotated)
+        noise_model=NoiseModel(), rotated=m.rotated, bar_rows=layout.bar_rows)
 
 
 def _slope_fit(win, lo, hi, x_thr, noise_var, n_b, low=0.2, high=0.8, reach_px=3.0):

@@ -460,7 +460,8 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
         side=np.array([g.side for g in layout.edges]),
         row_spacing_nm=m.pixel_size_nm, reduced_chi2=chi2, iterations=iters,
         contrast_to_noise=cnr, edge_flags=flags.astype(str), detector="model", profile_model=profile_model,
-        source=m.source, noise_model=noise, rotated=m.rotated, profile_shapes=tuple(shapes_all), precision=study)
+        source=m.source, noise_model=noise, rotated=m.rotated, profile_shapes=tuple(shapes_all), precision=study,
+        bar_rows=layout.bar_rows)
 
 
 def _study(frame: _Frame, coarse: CoarsePass, shaped: ShapedPass, noise: NoiseModel, res: RowFit, valid,

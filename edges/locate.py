@@ -15,8 +15,8 @@ from scipy import ndimage
 
 from ._types import Micrograph
 
-__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "MIN_HALF_WINDOW_PX", "MAX_TILT_DEG",
-           "POLARITIES", "ORIENTATIONS"]
+__all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "information_bar_rows", "MIN_HALF_WINDOW_PX",
+           "MAX_TILT_DEG", "POLARITIES", "ORIENTATIONS"]
 
 #: Smallest reach of a fit window on either side of an edge (pixels) that is still fitted: with
 #: 2 px a side (5 pixels for position, gain and offset) edges 4 px apart, pitches of 8 px, are
@@ -93,6 +93,9 @@ class LineLayout:
         Tilt-aligned row-averaged profile (grey levels).
     levels : tuple of float
         (space level, line level) of the profile.
+    bar_rows : tuple of int
+        Rows of an information bar cut from the top and the bottom of the image before anything
+        else (see :func:`information_bar_rows`); ``micrograph`` is the image without them.
     """
 
     micrograph: Micrograph
@@ -102,6 +105,7 @@ class LineLayout:
     dropped_partial_lines: int
     profile: np.ndarray
     levels: tuple
+    bar_rows: tuple = (0, 0)
 
     def guess_columns(self, rows) -> np.ndarray:
         """(n_edges, len(rows)) per-row guesses that follow the tilt."""
@@ -119,6 +123,53 @@ def _validate(m: Micrograph) -> None:
     bad = np.count_nonzero(~np.isfinite(px))
     if bad > 0.01 * px.size:
         raise LocateError(f"{m.source}: {bad} pixels ({100 * bad / px.size:.1f}%) are NaN or infinite")
+
+
+def information_bar_rows(pixels: np.ndarray, *, max_share: float = 1 / 3) -> tuple[int, int]:
+    """Rows to cut from the top and bottom of an image: an information bar (a solid band, with or
+    without text, as SEMs write along the bottom of a micrograph).
+
+    A row is foreign when its mean or its spread (log sd) lies more than 10 robust standard
+    deviations (1.4826 MAD) from a quadratic trend through the middle half of the image's rows; the bar is the run
+    of foreign rows that starts at the border (gaps of up to 2 rows bridged, 2 rows at least).
+    Nothing is cut when the run would exceed ``max_share`` of the rows.
+    Returns (rows at the top, rows at the bottom).
+    """
+    n = pixels.shape[0]
+    if n < 32:
+        return 0, 0
+    mean = pixels.mean(axis=1)
+    log_sd = np.log(np.maximum(pixels.std(axis=1), 1e-12))
+    core = slice(n // 4, n - n // 4)
+
+    t = np.linspace(-1.0, 1.0, n)
+
+    def z(v):
+        # against a quadratic through the middle half (vignetting and gradients are smooth; a
+        # bar is abrupt), in robust standard deviations of the middle half about it
+        trend = np.polyval(np.polyfit(t[core], v[core], 2), t)
+        dev = v - trend
+        mad = 1.4826 * np.median(np.abs(dev[core] - np.median(dev[core])))
+        return np.abs(dev) / max(mad, 1e-9 * max(abs(float(np.median(v[core]))), 1.0))
+
+    foreign = (z(mean) > 10) | (z(log_sd) > 10)
+
+    def run(flags):
+        k, gap, end = 0, 0, 0
+        while k < flags.size:
+            if flags[k]:
+                end, gap = k + 1, 0
+            else:
+                gap += 1
+                if gap > 2:
+                    break
+            k += 1
+        return end if end >= 2 else 0
+
+    top, bottom = run(foreign), run(foreign[::-1])
+    if top + bottom > max_share * n:
+        return 0, 0
+    return top, bottom
 
 
 def _block_shift(a: np.ndarray, b: np.ndarray, max_shift: int) -> float:
@@ -252,6 +303,11 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     if window_px % 2 != 1 or window_px < 2 * MIN_HALF_WINDOW_PX + 1:
         raise ValueError(f"window_px={window_px}: must be an odd integer >= {2 * MIN_HALF_WINDOW_PX + 1}")
     _validate(micrograph)
+    # an information bar along the top or bottom of the image (as written by the SEM) is cut first
+    bar = information_bar_rows(np.where(np.isfinite(micrograph.pixels), micrograph.pixels,
+                                        np.nanmedian(micrograph.pixels)))
+    if any(bar):
+        micrograph = replace(micrograph, pixels=micrograph.pixels[bar[0]:micrograph.pixels.shape[0] - bar[1]])
     px = micrograph.pixels
     if not np.all(np.isfinite(px)):   # a few bad pixels: located around, flagged by the fit
         px = np.where(np.isfinite(px), px, np.nanmedian(px))
@@ -347,4 +403,4 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     micrograph = replace(micrograph, polarity=polarity)
     return LineLayout(micrograph=micrograph, edges=tuple(guesses), tilt_px_per_row=tilt,
                       reference_row=ref, dropped_partial_lines=dropped, profile=profile,
-                      levels=(hi, lo) if polarity == "dark" else (lo, hi))
+                      levels=(hi, lo) if polarity == "dark" else (lo, hi), bar_rows=tuple(int(b) for b in bar))

@@ -470,6 +470,11 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
     if traces.detector in ("threshold", "slope"):
         warnings.append(("baseline_detector", f"{traces.detector} detector: its noise floor is a linearised "
                                               "estimate, and at low contrast-to-noise it shrinks real roughness"))
+    if any(traces.bar_rows):
+        top, bottom = traces.bar_rows
+        where = " and ".join(w for w, k in ((f"{top} at the top", top), (f"{bottom} at the bottom", bottom)) if k)
+        warnings.append(("information_bar", f"rows of an information bar were left out ({where}); the edges are "
+                                            "measured on the rest of the image"))
     if traces.rotated:
         warnings.append(("scan_along_lines", "the lines run along the scan direction: noise correlated along the "
                                              "scan correlates neighbouring samples of each edge"))
