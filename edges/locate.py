@@ -120,6 +120,10 @@ def _validate(m: Micrograph) -> None:
         raise LocateError(f"{m.source}: expected a 2-D image, got shape {px.shape}")
     if min(px.shape) < 16:
         raise LocateError(f"{m.source}: image of {px.shape[0]} x {px.shape[1]} pixels is too small (16 x 16 at least)")
+    levels = np.unique(px[::2, ::2][np.isfinite(px[::2, ::2])]).size
+    if levels <= 2:
+        raise LocateError(f"{m.source}: the image holds only {levels} grey level(s) (blank, or binarised by a "
+                          "threshold): edges cannot be placed within a pixel; use the original micrograph")
     bad = np.count_nonzero(~np.isfinite(px))
     if bad > 0.01 * px.size:
         raise LocateError(f"{m.source}: {bad} pixels ({100 * bad / px.size:.1f}%) are NaN or infinite")

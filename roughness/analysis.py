@@ -413,8 +413,14 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
     rough = analyse_traces(traces, detrend=options.detrend, window=options.psd_window,
                            max_gap_rows=options.max_gap_rows, max_invalid_fraction=options.max_invalid_fraction)
     if not np.any(np.isfinite(rough.edge_var_biased_nm2)):
+        counts = traces.reason_counts()
+        total = max(sum(counts.values()), 1)
+        rows = ", ".join(f"{name} {100 * k / total:.0f}%" for name, k in sorted(counts.items(), key=lambda kv: -kv[1]))
+        hint = (" (saturated rows: the detector clipped the image; lower the contrast or brightness)"
+                if counts.get("saturated", 0) > 0.5 * total else "")
         raise ValueError(f"{traces.source}: no edge could be measured (" +
-                         ", ".join(sorted(set(rough.edge_exclusion) - {""})) + ")")
+                         ", ".join(sorted(set(rough.edge_exclusion) - {""})) +
+                         (f"; failed rows: {rows}" if rows else "") + ")" + hint)
     rng = np.random.default_rng(options.seed)
     summary = summarize([rough.lines], n_resamples=options.n_resamples, confidence=options.confidence, rng=rng)
     try:

@@ -131,3 +131,10 @@ def test_information_bar_is_cut_and_counted(rng):
                dict(horizontal=True), dict(quantise_bits=8, gain=0.6, black_level=20.0)):
         clean, _, _ = line_space(rng, n_rows=256, n_cols=300, **kw)
         assert information_bar_rows(clean.pixels) == (0, 0), kw
+
+
+def test_binarised_images_are_refused_with_the_reason(rng):
+    m, _, _ = line_space(rng, n_rows=128, n_cols=200, dose_per_pixel=100)
+    binary = Micrograph((m.pixels > np.median(m.pixels)) * 255.0, 1.0, source="thresholded.png")
+    with pytest.raises(LocateError, match=r"thresholded\.png: the image holds only 2 grey level"):
+        locate_edges(binary)

@@ -129,3 +129,12 @@ def test_plateau_check_runs_without_a_determined_model(rng):
     # every percentage printed in a warning is at most 100
     import re
     assert all(float(p) <= 100 for _, w in a.warnings for p in re.findall(r"(\d+(?:\.\d+)?)%", w))
+
+
+def test_clipped_image_is_refused_with_the_reason(rng):
+    from edges import Micrograph, fit_edges
+    from .._images import line_space
+    m, _, _ = line_space(rng, n_rows=128, n_cols=200, dose_per_pixel=100)
+    clipped = Micrograph(np.minimum(m.pixels, np.percentile(m.pixels, 60)), 1.0, source="clipped.tif")
+    with pytest.raises(ValueError, match=r"clipped\.tif: no edge could be measured .*saturated 100%.*clipped"):
+        analyse_image(fit_edges(clipped))
