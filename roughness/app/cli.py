@@ -17,7 +17,7 @@ from edges.render import SEMSettings
 
 from ..psd import DETRENDS, WINDOWS
 from .demo import run_demo
-from .runner import measure
+from .runner import expand_inputs, measure
 from .settings import DETECTORS, EXIT_OK, EXIT_SOME_FAILED, EXIT_USAGE, MeasureSettings, SettingsError
 from .simulate import simulate_images
 from .tables import summary_table
@@ -188,13 +188,23 @@ def _run_measure(args, groups=None) -> int:
     settings = _settings(args)
     if args.workers < 1:
         raise SettingsError(f"--workers {args.workers}: must be >= 1")
+    given = [i for items in (groups.values() if groups else [args.images]) for i in items]
+    found = [p for p in expand_inputs(given) if Path(p).is_file()]
+    if not found:
+        raise SettingsError("no images found in " + ", ".join(repr(str(g)) for g in given) +
+                            " (a folder must hold .tif, .tiff or .png files; quote patterns so that "
+                            "quietedge expands them)")
     meas = measure(None if groups else args.images, groups=groups, settings=settings, workers=args.workers,
                    progress=not args.quiet, cache_dir=args.out / "per_image", resume=args.resume)
     meas.write(args.out, report=not args.no_report)
     if not args.quiet:
         _print_headline(meas, args.out)
     if not meas.images:
-        print("quietedge: no image could be measured", file=sys.stderr)
+        print("quietedge: no image could be measured:", file=sys.stderr)
+        for name, reason in meas.failures[:10]:
+            print(f"  {reason}" if str(name) in str(reason) else f"  {name}: {reason}", file=sys.stderr)
+        if len(meas.failures) > 10:
+            print(f"  ... and {len(meas.failures) - 10} more in failures.csv", file=sys.stderr)
     return EXIT_SOME_FAILED if meas.failures else EXIT_OK
 
 

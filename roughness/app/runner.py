@@ -82,8 +82,9 @@ class Measurement:
 
 def expand_inputs(items) -> list:
     """Paths, folders (their TIFF/PNG files) and glob patterns to a sorted list; arrays and
-    Micrographs pass through.  A pattern or path that matches nothing is kept so that it is
-    reported as a failure (never silently dropped)."""
+    Micrographs pass through.  An existing file is taken as itself even if its name looks like a
+    pattern; a file reached twice is listed once.  A pattern or path that matches nothing is kept
+    so that it is reported as a failure (never silently dropped)."""
     out = []
     for item in items:
         if isinstance(item, (np.ndarray, Micrograph)):
@@ -94,12 +95,21 @@ def expand_inputs(items) -> list:
         if p.is_dir():
             files = sorted(q for q in p.iterdir() if q.suffix.lower() in IMAGE_SUFFIXES)
             out.extend(files if files else [p])
+        elif p.exists():                    # a file named like a pattern ("img[1].tif") is itself
+            out.append(p)
         elif any(ch in text for ch in "*?["):
             hits = sorted(Path(h) for h in glob.glob(text))
             out.extend(hits if hits else [p])
         else:
             out.append(p)
-    return out
+    # the same file given twice (a folder and a pattern, two spellings) is measured once
+    seen, unique = set(), []
+    for item in out:
+        key = os.path.realpath(item) if isinstance(item, Path) and item.exists() else id(item)
+        if key not in seen:
+            seen.add(key)
+            unique.append(item)
+    return unique
 
 
 def _name(item, k):
@@ -232,6 +242,7 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
         settings = replace(settings, pixel_size_nm=pixel_size_nm)
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ValueError(f"workers={workers!r}: must be an integer >= 1")
+    workers = min(workers, os.cpu_count() or 1)          # never more processes than cores
     jobs = []
     if groups:
         for gname, items in groups.items():

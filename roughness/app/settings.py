@@ -31,6 +31,11 @@ class SettingsError(ValueError):
     """A setting with a wrong value or type; the message names it and what is allowed."""
 
 
+#: Pixel sizes accepted (nm): a top-down SEM image of line/space patterns has pixels of
+#: about 0.1-20 nm; a generous range still catches a value given in the wrong unit.
+PIXEL_SIZE_RANGE_NM = (0.01, 1000.0)
+
+
 @dataclass(frozen=True)
 class MeasureSettings:
     """Everything that decides a measurement (written to settings.json).
@@ -91,6 +96,9 @@ class MeasureSettings:
         if px is not None and (isinstance(px, bool) or not isinstance(px, (int, float, np.number))
                                or not math.isfinite(px) or not px > 0):
             raise SettingsError(f"pixel_size_nm={px!r}: must be a positive number of nm (or None: from the file)")
+        if px is not None and not PIXEL_SIZE_RANGE_NM[0] <= px <= PIXEL_SIZE_RANGE_NM[1]:
+            raise SettingsError(f"pixel_size_nm={px!r}: outside {PIXEL_SIZE_RANGE_NM[0]:g}-{PIXEL_SIZE_RANGE_NM[1]:g} nm, "
+                                "the range of SEM micrographs (is it in metres or micrometres?)")
         w = self.window_px
         if isinstance(w, bool) or not isinstance(w, (int, np.integer)) or w % 2 != 1 or w < 9:
             raise SettingsError(f"window_px={w!r}: must be an odd integer >= 9")

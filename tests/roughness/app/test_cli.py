@@ -39,3 +39,11 @@ def test_bad_usage_exits_2(tmp_path, capsys):
     assert main(["simulate"]) == 2
     assert main(["simulate", "--out", str(tmp_path), "--cd-nm", "80"]) == 2
     assert "cd_nm=80" in capsys.readouterr().err
+
+
+def test_no_images_found_is_a_usage_error_with_the_reason(tmp_path, capsys):
+    (tmp_path / "empty").mkdir()
+    assert main(["measure", str(tmp_path / "empty"), "--out", str(tmp_path / "out"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "no images found in" in err and "empty" in err and ".tif" in err
+    assert main(["measure", str(tmp_path / "nothing_*.tif"), "--out", str(tmp_path / "out"), "--quiet"]) == 2

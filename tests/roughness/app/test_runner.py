@@ -236,3 +236,18 @@ def test_mixed_pixel_sizes_all_reach_psd_csv_whatever_the_order(tmp_path, rng):
     assert forward.overall.psd_model.correlation_length_nm == backward.overall.psd_model.correlation_length_nm
     psd = pd.read_csv(forward.write(tmp_path / "out", report=False) / "psd.csv")
     assert (psd.loc[psd["quantity"] == "edge", "n_images"] == 4).all()
+
+
+def test_literal_names_duplicates_and_absurd_settings(tmp_path, rng):
+    from roughness.app.runner import expand_inputs
+    from roughness.app.settings import SettingsError
+    px, _ = simulate_line_space(n_rows=64, n_cols=200, settings=SEMSettings(dose_per_pixel=300), rng=rng)
+    odd = write_micrograph(tmp_path / "img[1].tif", px, pixel_size_nm=1.0)
+    write_micrograph(tmp_path / "img1.tif", px, pixel_size_nm=1.0)
+    # a file named like a pattern is itself, not the pattern's match ("img1.tif")
+    assert expand_inputs([str(odd)]) == [odd]
+    # the same file through a folder, a pattern and its own name is listed once
+    listed = expand_inputs([tmp_path, str(tmp_path / "img1*.tif"), tmp_path / "img1.tif"])
+    assert sorted(p.name for p in listed) == ["img1.tif", "img[1].tif"]
+    with pytest.raises(SettingsError, match="pixel_size_nm=1000000000.0: outside 0.01-1000 nm"):
+        MeasureSettings(pixel_size_nm=1e9)
