@@ -42,10 +42,10 @@ __all__ = ["PrecisionStudy", "run_twin"]
 #: Seed of the twin's row sample and noise: the same image always gives the same study.
 _TWIN_SEED = 20261205
 #: Samples (rows x repeats) per edge aimed at: 1024 gives the per-edge variance ratio to ~4.5%;
-#: with many edges fewer per edge (at least 256), up to 8192 per image: the image's pooled
+#: with many edges fewer per edge (at least 256), up to 6144 per image: the image's pooled
 #: calibration to ~1.5-2%.
 _SAMPLES_PER_EDGE = 1024
-_SAMPLES_PER_IMAGE = 8192
+_SAMPLES_PER_IMAGE = 6144
 
 
 
