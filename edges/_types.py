@@ -50,6 +50,10 @@ class Micrograph:
     saturation_level : float or None
         Grey level at which the detector clips (the integer type's maximum for integer files),
         or None when unknown.
+    pixel_size_source : str
+        ``"file"`` (TIFF resolution tags) or ``"given"`` (by the user or the caller).
+    file_pixel_size_nm : float or None
+        The file's own calibration when it has one (also when a given size overrides it).
     """
 
     pixels: np.ndarray
@@ -58,6 +62,8 @@ class Micrograph:
     rotated: bool = False
     polarity: str = "unknown"
     saturation_level: float | None = None
+    pixel_size_source: str = "given"
+    file_pixel_size_nm: float | None = None
 
     @property
     def shape(self) -> tuple[int, int]:

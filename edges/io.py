@@ -121,7 +121,8 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
     if not (np.isfinite(size) and size > 0):
         raise MicrographError(f"{path}: pixel size {size!r} nm must be a positive number")
     return Micrograph(pixels=pixels, pixel_size_nm=float(size), source=str(path),
-                      saturation_level=saturation)
+                      saturation_level=saturation, pixel_size_source="given" if pixel_size_nm is not None else "file",
+                      file_pixel_size_nm=None if tag_size is None else float(tag_size))
 
 
 def write_micrograph(path, pixels, *, pixel_size_nm: float, bit_depth: int = 16) -> Path:

@@ -253,6 +253,8 @@ def write_report(meas, path) -> Path:
             break
         a = r.analysis
         parts.append(f"<h2>{esc(r.name)}</h2>")
+        if np.isfinite(r.pixel_size_nm):
+            parts.append(f"<p class='note'>pixel size {r.pixel_size_nm:.4g} nm ({esc(r.pixel_size_source)})</p>")
         for code, text in a.warnings:
             parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
         parts.append(_table(a.summary, a.psd_model, a.model_sigma_finite_nm))

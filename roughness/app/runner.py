@@ -44,6 +44,11 @@ class ImageResult:
         Kept for the report's figures for the first ``report_image_sections`` images only.
     preview : (rows, cols) ndarray of float16 or None
         The image (lines vertical, first rows) for those figures.
+    pixel_size_nm : float
+        The pixel size measured with.
+    pixel_size_source : str
+        ``"file"`` (TIFF resolution tags), ``"given"`` (settings or API), or ``"given, overriding
+        the file's X nm"``.
     """
 
     name: str
@@ -51,6 +56,8 @@ class ImageResult:
     analysis: ImageAnalysis
     traces: EdgeTraces | None = None
     preview: np.ndarray | None = None
+    pixel_size_nm: float = float("nan")
+    pixel_size_source: str = ""
 
 
 @dataclass(frozen=True)
@@ -149,11 +156,20 @@ def _measure_one(item, k, settings: MeasureSettings, group: str = "") -> ImageRe
     m = _load(item, name, settings)
     traces = detect_edges(m, settings)
     analysis = analyse_image(traces, settings.analysis)
+    source = m.pixel_size_source
+    file_size = m.file_pixel_size_nm
+    if source == "given" and file_size is not None and abs(file_size / m.pixel_size_nm - 1) > 0.01:
+        source = f"given, overriding the file's {file_size:.4g} nm"
+        analysis = replace(analysis, warnings=analysis.warnings + (
+            ("pixel_size_override", f"the pixel size given ({m.pixel_size_nm:.4g} nm) overrides the file's own "
+                                    f"calibration ({file_size:.4g} nm): every length scales with it; check which "
+                                    "is right"),))
+    common = dict(name=name, group=group, analysis=analysis, pixel_size_nm=float(m.pixel_size_nm),
+                  pixel_size_source=source)
     if k >= settings.report_image_sections:
-        return ImageResult(name=name, group=group, analysis=analysis)
+        return ImageResult(**common)
     pixels = m.pixels.T if traces.rotated else m.pixels
-    return ImageResult(name=name, group=group, analysis=analysis, traces=traces,
-                       preview=pixels[: min(pixels.shape[0], _PREVIEW_ROWS)].astype(np.float16))
+    return ImageResult(**common, traces=traces, preview=pixels[: min(pixels.shape[0], _PREVIEW_ROWS)].astype(np.float16))
 
 
 def _safe_measure(args):

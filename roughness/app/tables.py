@@ -65,7 +65,8 @@ def summary_table(meas) -> pd.DataFrame:
     rows = []
     for r in meas.images:
         a = r.analysis
-        row = {"image": r.name, "group": r.group}
+        row = {"image": r.name, "group": r.group, "pixel_size_nm": r.pixel_size_nm,
+               "pixel_size_source": r.pixel_size_source}
         row.update(_stat_columns(a.summary, a.psd_model, a.advice, a.acf_correlation_length_nm))
         row.update({
             "edge_sigma_model_finite_nm": a.model_sigma_finite_nm,
@@ -148,7 +149,7 @@ def _columns():
         "lr_correlation_unbiased_high", "cd_nm", "cd_low_nm", "cd_high_nm", "confidence")},
         n_images=1, n_lines=1, n_edges=2, n_resamples=0)
     stats = list(_stat_columns(s, None, SamplingAdvice()))
-    summary = ["image", "group"] + stats + [
+    summary = ["image", "group", "pixel_size_nm", "pixel_size_source"] + stats + [
         "edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "plateau_check",
         "row_noise_correlation", "precision_calibration", "shrinkage", "rows", "invalid_rows", "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
     return summary, ["group", "n_images"] + stats + ["psd_grids"]

@@ -251,3 +251,16 @@ def test_literal_names_duplicates_and_absurd_settings(tmp_path, rng):
     assert sorted(p.name for p in listed) == ["img1.tif", "img[1].tif"]
     with pytest.raises(SettingsError, match="pixel_size_nm=1000000000.0: outside 0.01-1000 nm"):
         MeasureSettings(pixel_size_nm=1e9)
+
+
+def test_pixel_size_and_its_source_are_reported_and_an_override_warned(tmp_path, rng):
+    px, _ = simulate_line_space(n_rows=128, n_cols=260, settings=SEMSettings(dose_per_pixel=300), rng=rng)
+    path = write_micrograph(tmp_path / "half_nm.tif", px, pixel_size_nm=0.5)
+    own = measure([path], settings=MeasureSettings(n_resamples=50)).images[0]
+    assert own.pixel_size_nm == pytest.approx(0.5, rel=1e-6) and own.pixel_size_source == "file"
+    assert "pixel_size_override" not in own.analysis.warning_codes
+    forced = measure([path], settings=MeasureSettings(n_resamples=50, pixel_size_nm=1.0)).images[0]
+    assert forced.pixel_size_source == "given, overriding the file's 0.5 nm"
+    assert "pixel_size_override" in forced.analysis.warning_codes
+    # every length doubles with the pixel size: the CD is the file's twice
+    assert forced.analysis.summary.cd_nm == pytest.approx(2 * own.analysis.summary.cd_nm, rel=1e-9)
