@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+import warnings
 from dataclasses import fields
 from pathlib import Path
 
@@ -153,6 +154,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="quietedge",
         description="Line-edge and line-width roughness from SEM images, with the image noise taken out.")
+    parser.add_argument("--debug", action="store_true",
+                        help="show numerical warnings and the full traceback of an error")
     sub = parser.add_subparsers(dest="command", required=True)
     _add_simulate(sub)
     _add_measure(sub)
@@ -225,17 +228,24 @@ def main(argv=None) -> int:
         args = parser.parse_args(argv)
     except SystemExit as exc:   # argparse exits 2 on bad usage, 0 on --help
         return int(exc.code or 0)
-    try:
-        if args.command == "simulate":
-            return _run_simulate(args)
-        if args.command == "measure":
-            return _run_measure(args)
-        if args.command == "compare":
-            return _run_measure(args, groups=_groups(args.group))
-        return run_demo(args.out)
-    except (ValueError, OSError) as exc:
-        print(f"quietedge {args.command}: {exc}", file=sys.stderr)
-        return EXIT_USAGE
+    with warnings.catch_warnings():
+        if not args.debug:
+            # numerical warnings of NaN rows and empty reductions are expected and accounted for
+            # (reason codes, "not determined"); they are not for a process engineer's terminal
+            warnings.simplefilter("ignore", RuntimeWarning)
+        try:
+            if args.command == "simulate":
+                return _run_simulate(args)
+            if args.command == "measure":
+                return _run_measure(args)
+            if args.command == "compare":
+                return _run_measure(args, groups=_groups(args.group))
+            return run_demo(args.out)
+        except (ValueError, OSError) as exc:
+            if args.debug:
+                raise
+            print(f"quietedge {args.command}: {exc}", file=sys.stderr)
+            return EXIT_USAGE
 
 
 if __name__ == "__main__":

@@ -47,3 +47,25 @@ def test_no_images_found_is_a_usage_error_with_the_reason(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "no images found in" in err and "empty" in err and ".tif" in err
     assert main(["measure", str(tmp_path / "nothing_*.tif"), "--out", str(tmp_path / "out"), "--quiet"]) == 2
+
+
+def test_numerical_warnings_and_tracebacks_only_with_debug(tmp_path, capsys, monkeypatch):
+    import warnings
+
+    import roughness.app.cli as cli
+
+    def noisy(args, groups=None):
+        warnings.warn("invalid value encountered", RuntimeWarning)
+        raise ValueError("img.tif: something a user should read")
+
+    monkeypatch.setattr(cli, "_run_measure", noisy)
+    args = ["measure", "x.tif", "--out", str(tmp_path / "o")]
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        assert main(args) == 2
+    assert not [w for w in seen if issubclass(w.category, RuntimeWarning)]
+    assert "img.tif: something a user should read" in capsys.readouterr().err
+    with warnings.catch_warnings(record=True) as seen, pytest.raises(ValueError, match="something a user"):
+        warnings.simplefilter("always")
+        main(["--debug"] + args)
+    assert [w for w in seen if issubclass(w.category, RuntimeWarning)]      # shown with --debug
