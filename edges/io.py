@@ -14,7 +14,7 @@ import numpy as np
 
 from ._types import Micrograph
 
-__all__ = ["MicrographError", "read_micrograph", "write_micrograph", "read_truth", "write_truth"]
+__all__ = ["MicrographError", "read_micrograph", "write_micrograph", "read_truth", "write_truth", "MAX_PIXELS"]
 
 _TIFF_SUFFIXES = {".tif", ".tiff"}
 _PNG_SUFFIXES = {".png"}
@@ -23,6 +23,11 @@ _PNG_SUFFIXES = {".png"}
 class MicrographError(ValueError):
     """An image that cannot be measured; the message names the file and the reason."""
 
+
+
+#: Largest image read (pixels): 64 megapixels, e.g. 8192 x 8192 (SEM micrographs are usually at
+#: most 4096 x 4096); a header declaring more is refused before any pixel is decoded.
+MAX_PIXELS = 64_000_000
 
 def _pixel_size_from_tiff_tags(tif) -> float | None:
     page = tif.pages[0]
@@ -92,6 +97,12 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
             import tifffile
 
             with tifffile.TiffFile(path) as tif:
+                shape = tif.pages[0].shape if tif.pages else ()
+                n_px = int(np.prod(shape[:2])) if len(shape) >= 2 else 0
+                if n_px > MAX_PIXELS:
+                    raise MicrographError(f"{path}: the file declares {shape[1]} x {shape[0]} pixels, more than the "
+                                          f"{MAX_PIXELS / 1e6:.0f}-megapixel limit (a damaged or hostile header, "
+                                          "or a stitched field: crop it first)")
                 data = tif.asarray()
                 tag_size = _pixel_size_from_tiff_tags(tif)
         elif suffix in _PNG_SUFFIXES:

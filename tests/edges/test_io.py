@@ -69,3 +69,19 @@ def test_truth_round_trip(tmp_path):
     back = read_truth(write_truth(tmp_path / "t.json", truth))
     np.testing.assert_array_equal(back["edge_nm"], truth["edge_nm"])
     assert back["cd_nm"] == 31.5 and back["orientation"] == "vertical"
+
+
+def test_a_header_declaring_a_huge_image_is_refused_before_decoding(tmp_path, monkeypatch):
+    import tifffile
+
+    from edges.io import MAX_PIXELS, MicrographError, read_micrograph
+    path = tmp_path / "huge.tif"
+    tifffile.imwrite(path, np.zeros((16384, 8192), np.uint8), compression="zlib")   # 134 Mpx, ~0.15 MB
+    assert path.stat().st_size < 1_000_000 and 16384 * 8192 > MAX_PIXELS
+
+    def never(*a, **k):
+        raise AssertionError("pixels decoded")
+
+    monkeypatch.setattr(tifffile.TiffFile, "asarray", never)
+    with pytest.raises(MicrographError, match=r"huge\.tif: the file declares 8192 x 16384 pixels"):
+        read_micrograph(path, pixel_size_nm=1.0)
