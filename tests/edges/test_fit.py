@@ -29,6 +29,7 @@ def test_noiseless_plain_step_positions_are_exact(rng, model):
     # a plain blurred step is in every model's family: error within 0.02 px of the truth
     m, truth, _ = line_space(rng, n_rows=400, n_cols=200, edge_peak=0, shot_noise=False)
     et = fit_edges(m, profile_model=model)
+    assert not any("close_neighbour" in f for f in et.edge_flags)     # 64 px pitch: 15 px a side
     err = et.position_nm - truth["edge_nm"]
     assert et.valid.all()
     assert np.max(np.abs(err)) < 0.02
@@ -216,6 +217,7 @@ def test_pitch_of_eight_pixels_is_measured_on_every_whole_line(rng):
     et = fit_edges(m)
     assert et.position_nm.shape == truth["edge_nm"].shape
     assert et.valid.mean() > 0.99
+    assert all("close_neighbour" in f for f in et.edge_flags)     # 2 px a side: flagged, not refused
     err = np.where(et.valid, et.position_nm - truth["edge_nm"], np.nan)
     # no edge off by a pixel: per-edge mean error is the (common) profile offset, < 0.1 px here
     assert np.nanmax(np.abs(np.nanmean(err, axis=1))) < 0.1
