@@ -129,7 +129,8 @@ class SpectrumSums:
     line_length_nm : float
         Length of each trace (rows times row spacing).
     floor_shape : (n_freq,) ndarray
-        Factor on the white floor per frequency (noise correlated between rows); ones if none.
+        Factor on the white floor per frequency (noise correlated between rows; ones when the
+        rows are independent).
     """
 
     frequency_per_nm: np.ndarray
@@ -137,11 +138,7 @@ class SpectrumSums:
     floor_sum_nm3: float
     n_traces: int
     line_length_nm: float
-    floor_shape: np.ndarray = None
-
-    def __post_init__(self):
-        if self.floor_shape is None:
-            object.__setattr__(self, "floor_shape", np.ones(np.asarray(self.frequency_per_nm).size))
+    floor_shape: np.ndarray
 
     @property
     def mean_floor_spectrum_nm3(self) -> np.ndarray:
@@ -190,14 +187,9 @@ class EdgeDiagnostics:
     invalid_rows: np.ndarray
     exclusion: np.ndarray
     flags: np.ndarray
-    achieved_sd_nm: np.ndarray = None
-    crlb_sd_nm: np.ndarray = None
-    shrinkage: np.ndarray = None
-
-    def __post_init__(self):
-        for name in ("achieved_sd_nm", "crlb_sd_nm", "shrinkage"):
-            if getattr(self, name) is None:
-                object.__setattr__(self, name, np.full(np.asarray(self.line).size, np.nan))
+    achieved_sd_nm: np.ndarray
+    crlb_sd_nm: np.ndarray
+    shrinkage: np.ndarray
 
 
 #: Shrinkage (slope of fitted on true deviation, from the precision study) below which the
@@ -349,7 +341,8 @@ class ImageAnalysis:
 def _precision_columns(traces: EdgeTraces) -> dict:
     study = traces.precision
     if study is None:
-        return {}
+        nan = np.full(traces.n_edges, np.nan)
+        return {"achieved_sd_nm": nan, "crlb_sd_nm": nan.copy(), "shrinkage": nan.copy()}
     return {"achieved_sd_nm": np.asarray(study.achieved_sd, float), "crlb_sd_nm": np.asarray(study.crlb_sd, float),
             "shrinkage": np.asarray(study.shrinkage, float)}
 
@@ -587,12 +580,7 @@ class PooledSpectrum:
     noise_floor_nm3: float
     n_traces: int
     n_images: int
-    noise_floor_spectrum_nm3: np.ndarray = None
-
-    def __post_init__(self):
-        if self.noise_floor_spectrum_nm3 is None:
-            object.__setattr__(self, "noise_floor_spectrum_nm3",
-                               np.full(np.asarray(self.frequency_per_nm).size, self.noise_floor_nm3))
+    noise_floor_spectrum_nm3: np.ndarray
 
     @property
     def psd_unbiased_nm3(self) -> np.ndarray:

@@ -112,11 +112,7 @@ class TraceSpectra:
     frequency_per_nm: np.ndarray
     psd_nm3: np.ndarray
     floor_nm3: np.ndarray
-    floor_shape: np.ndarray = None
-
-    def __post_init__(self):
-        if self.floor_shape is None:
-            object.__setattr__(self, "floor_shape", np.ones(np.asarray(self.frequency_per_nm).size))
+    floor_shape: np.ndarray
 
     @property
     def floor_spectrum_nm3(self) -> np.ndarray:

@@ -222,7 +222,8 @@ def test_pitch_of_eight_pixels_is_measured_on_every_whole_line(rng):
     # no edge off by a pixel: per-edge mean error is the (common) profile offset, < 0.1 px here
     assert np.nanmax(np.abs(np.nanmean(err, axis=1))) < 0.1
     # scatter about each edge's mean against the fit's own uncertainty: 7680 rows, so the ratio
-    # of sds has sampling sd ~1%; the linearised covariance is allowed 15%
+    # of sds has sampling sd ~1%; measured 0.93-0.95 over four seeds (the step model in 5-px
+    # windows over-states the noise slightly: DEVELOPERS.md, narrow windows); 15% allowed
     scatter = np.nanstd(err - np.nanmean(err, axis=1, keepdims=True))
     predicted = math.sqrt(np.nanmean(np.where(et.valid, et.sigma_nm ** 2, np.nan)))
     assert scatter == pytest.approx(predicted, rel=0.15)
@@ -267,7 +268,7 @@ BRIGHT = dict(space_level=0.1, line_level=0.8, edge_peak=1.0)
 def test_twin_calibrated_floor_matches_the_real_scatter(rng, dose):
     # 40 noise realisations of 48 rows: each (edge, row) variance has a relative se of
     # sqrt(2/39) ~ 23%, pooled over 8 edges x 48 rows ~1.2%; the twin's own calibration has
-    # se ~1.2%; 8% allowed (measured 0.99-1.03)
+    # se ~1.2-2%; 8% allowed (measured 1.03-1.04 at 10, 30 and 100 counts)
     m, truth, _ = line_space(rng, n_rows=48, n_cols=300, repeat=40, dose_per_pixel=dose, **BRIGHT)
     et = fit_edges(m)
     pos = np.where(et.valid, et.position_nm, np.nan).reshape(et.n_edges, 40, 48)
