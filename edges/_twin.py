@@ -8,8 +8,9 @@ model -- each edge's tabulated mean profile, each row's gain and offset, the pix
 ``var = c0 + c1 * signal``, its correlation along the scan -- it re-renders windows of sampled
 rows with the edge at known places and fresh noise, refits them with the same passes as the
 image (a grid-searched plain-step fit on windows about the centre line, the image's profile
-from there, again on windows about that estimate, then the weighted fit) -- the order of
-:func:`edges.fit.fit_edges`'s passes, repeated here by hand: a change there must be made here too, and compares fitted with true positions:
+from there, again on windows about that estimate, then the weighted fit), and compares fitted
+with true positions.  (That is the order of :func:`edges.fit.fit_edges`'s passes, repeated here
+by hand: a change there must be made here too.)
 
 * the regression slope of fitted on true deviation is the detector's *shrinkage* (1 when it
   follows the edge; below 1 when noise pulls rows back toward the window centre);
