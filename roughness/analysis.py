@@ -598,7 +598,7 @@ class GroupAnalysis:
     sources : tuple of str
         Member images, sorted.
     summary : RoughnessSummary
-        Pooled roughness; images, then lines within them, resampled for the intervals.
+        Pooled roughness; whole images resampled for the intervals (lines for a group of one).
     edge_psd, width_psd, centre_psd : PooledSpectrum or None
         Averaged PSDs on the common grid (None when no trace of that quantity exists).
     n_grids : int
