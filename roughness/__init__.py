@@ -1,13 +1,14 @@
 """Roughness side of quietedge: edge traces in; unbiased LER/LWR, PSDs, models, reports out.
 
 Statistics (no files, tables or plots): :mod:`roughness.analysis` (one path from traces to
-numbers, per image and per group), :mod:`roughness.stats`, :mod:`roughness.psd`,
+numbers, per image and per group), :mod:`roughness.differences` (between groups), :mod:`roughness.stats`, :mod:`roughness.psd`,
 :mod:`roughness.noise`, :mod:`roughness.psd_model`, :mod:`roughness.synth`.  The application
 (settings, batch runner, tables, report, command line, demo) is :mod:`roughness.app`.
 """
 from .analysis import (AnalysisOptions, GroupAnalysis, ImageAnalysis, PooledSpectrum, SpectrumSums, analyse_group,
                        analyse_image)
-from .app import Measurement, MeasureSettings, SettingsError, measure, simulate_images
+from .app import Measurement, MeasureSettings, SettingsError, compare, measure, simulate_images
+from .differences import Comparison, Difference, compare_groups
 from .noise import floors_disagree, noise_floor_nm3, noise_variance_nm2, plateau_floor
 from .psd import detrend, periodogram
 from .psd_model import PSDModelFit, correlation_length_from_acf, fit_psd_model
@@ -18,7 +19,7 @@ from .synth import edge_pairs, rough_edges, simulate_line_space, thorsos_edges
 __all__ = [
     "analyse_image", "analyse_group", "AnalysisOptions", "ImageAnalysis", "GroupAnalysis", "SpectrumSums",
     "PooledSpectrum",
-    "measure", "Measurement", "MeasureSettings", "SettingsError", "simulate_images",
+    "measure", "compare", "compare_groups", "Comparison", "Difference", "Measurement", "MeasureSettings", "SettingsError", "simulate_images",
     "analyse_traces", "summarize", "ImageRoughness", "LineVariances", "RoughnessSummary", "QuantityRoughness",
     "expected_measured_variance", "sampling_plan", "SamplingPlan", "frames_for_noise_fraction",
     "periodogram", "detrend", "noise_floor_nm3", "noise_variance_nm2", "plateau_floor", "floors_disagree",

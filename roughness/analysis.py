@@ -65,6 +65,8 @@ class AnalysisOptions:
     precision_target : float
         Relative standard deviation of the unbiased edge sigma that the "lines needed" advice
         aims at (0 to 1).
+    frames : int
+        Frames averaged into each image as acquired (the "frames needed" advice starts there).
     """
 
     detrend: str = "linear"
@@ -78,6 +80,7 @@ class AnalysisOptions:
     calibrated_cnr: float = 5.0
     noise_share_target: float = 0.10
     precision_target: float = 0.05
+    frames: int = 1
 
     def __post_init__(self):
         _choice("detrend", self.detrend, tuple(DETRENDS))
@@ -86,6 +89,7 @@ class AnalysisOptions:
         _integer("n_resamples", self.n_resamples, 0)
         _integer("model_resamples", self.model_resamples, 0)
         _integer("seed", self.seed, 0)
+        _integer("frames", self.frames, 1)
         _fraction("max_invalid_fraction", self.max_invalid_fraction, closed=True)
         for name in ("confidence", "noise_share_target", "precision_target"):
             _fraction(name, getattr(self, name))
@@ -221,7 +225,7 @@ def _advice(summary: RoughnessSummary, model, line_length_nm, row_spacing_nm, op
     if not (np.isfinite(vu) and vu > 0 and np.isfinite(sn)):
         return SamplingAdvice()
     frames = frames_for_noise_fraction(noise_var_nm2=sn ** 2, unbiased_var_nm2=vu,
-                                       target_fraction=options.noise_share_target)
+                                       target_fraction=options.noise_share_target, frames_now=options.frames)
     lines = math.nan
     if _model_complete(model) and np.isfinite(line_length_nm):
         lines = sampling_plan(sigma_unbiased_nm=math.sqrt(vu), correlation_length_nm=model.correlation_length_nm,

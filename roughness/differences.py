@@ -20,7 +20,8 @@ from scipy.stats import norm, t as student_t
 from .stats import QUANTITIES, bootstrap_lines
 
 __all__ = ["COMPARED_QUANTITIES", "GroupEstimate", "Difference", "estimate_group", "difference",
-           "pairwise_differences", "holm", "units_needed"]
+           "pairwise_differences", "holm", "units_needed", "NoiseCheck", "noise_check", "Comparison",
+           "compare_groups"]
 
 #: The quantities compared, named as the summary table's columns (1-sigma, nm).
 COMPARED_QUANTITIES = tuple(f"{q}_sigma_{kind}_nm" for q in QUANTITIES for kind in ("unbiased", "biased"))
@@ -279,3 +280,225 @@ def units_needed(a: GroupEstimate, b: GroupEstimate, quantity: str, *, effect_nm
             break
         n = n_new
     return float(max(2, math.ceil(n - 1e-9)))
+
+
+# ------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class NoiseCheck:
+    """How much image noise inflates one group's roughness, and what would fix it.
+
+    Attributes
+    ----------
+    group, quantity : str
+        ``quantity`` is ``"edge"`` (LER) or ``"width"`` (LWR).
+    noise_fraction : float
+        Noise share of the biased variance.
+    inflation_3sigma : float
+        By how much the noise inflates the biased 3-sigma over the unbiased one:
+        ``1 / sqrt(1 - noise_fraction) - 1`` (0.21 share -> 12.5%); NaN when the noise is all.
+    flagged : bool
+        ``noise_fraction`` above the target share.
+    target_fraction : float
+    frames_now, frames_needed : float
+        Frames averaged now and frames that bring the share to the target (noise variance
+        falling as 1 / frames); infinite when the roughness is below the noise.
+    """
+
+    group: str
+    quantity: str
+    noise_fraction: float
+    inflation_3sigma: float
+    flagged: bool
+    target_fraction: float
+    frames_now: float
+    frames_needed: float
+
+
+def noise_check(group: str, quantity: str, var_biased_nm2: float, var_noise_nm2: float, *,
+                target_fraction: float, frames_now: int = 1) -> NoiseCheck:
+    """The noise check of one group and quantity.
+
+    Examples
+    --------
+    >>> c = noise_check("A", "edge", 1.0, 0.21, target_fraction=0.1)
+    >>> round(c.inflation_3sigma, 3), c.flagged, round(c.frames_needed, 2)
+    (0.125, True, 2.39)
+    """
+    from .stats import frames_for_noise_fraction
+
+    share = var_noise_nm2 / var_biased_nm2 if var_biased_nm2 > 0 else math.nan
+    inflation = 1 / math.sqrt(1 - share) - 1 if np.isfinite(share) and share < 1 else math.nan
+    frames = math.nan
+    if np.isfinite(share):
+        frames = frames_for_noise_fraction(noise_var_nm2=var_noise_nm2, unbiased_var_nm2=var_biased_nm2 - var_noise_nm2,
+                                           target_fraction=target_fraction, frames_now=frames_now)
+    return NoiseCheck(group=group, quantity=quantity, noise_fraction=share, inflation_3sigma=inflation,
+                      flagged=bool(np.isfinite(share) and share > target_fraction), target_fraction=target_fraction,
+                      frames_now=float(frames_now), frames_needed=frames)
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """Groups side by side (see :func:`compare_groups`).
+
+    Attributes
+    ----------
+    estimates : tuple of GroupEstimate
+        In the order given.
+    differences : tuple of Difference
+        Every pair (``b`` after ``a`` in that order) and every quantity of :data:`COMPARED_QUANTITIES`.
+    units_needed : tuple of float
+        Beside ``differences``: units per group to detect ``effect_3sigma_nm`` with 80% power.
+    noise : tuple of NoiseCheck
+        LER and LWR of every group.
+    band_per_nm : (float, float)
+        The frequency band every group's PSD covers (coarsest resolution to lowest Nyquist).
+    band_sigma_unbiased_nm : tuple of float
+        Each group's unbiased edge sigma integrated over that band (a common footing when line
+        lengths or pixel sizes differ).
+    notes : tuple of (code, text)
+        Where the groups are not on the same footing, or share images.
+    effect_3sigma_nm : float
+        The difference the power numbers aim at (3-sigma nm).
+    power, confidence : float
+    """
+
+    estimates: tuple
+    differences: tuple
+    units_needed: tuple
+    noise: tuple
+    band_per_nm: tuple
+    band_sigma_unbiased_nm: tuple
+    notes: tuple
+    effect_3sigma_nm: float
+    power: float
+    confidence: float
+
+    def difference(self, group_a: str, group_b: str, quantity: str) -> Difference:
+        for d in self.differences:
+            if (d.group_a, d.group_b, d.quantity) == (group_a, group_b, quantity):
+                return d
+        raise KeyError(f"no difference {group_b} - {group_a} of {quantity}")
+
+    def estimate(self, name: str) -> GroupEstimate:
+        for e in self.estimates:
+            if e.name == name:
+                return e
+        raise KeyError(f"no group {name!r}")
+
+
+def _band_sigma(spectrum, band):
+    if spectrum is None:
+        return math.nan
+    f = spectrum.frequency_per_nm
+    use = (f >= band[0] * (1 - 1e-9)) & (f <= band[1] * (1 + 1e-9)) & (f > 0)
+    if not use.any():
+        return math.nan
+    df = float(f[1] - f[0])
+    var = float(np.sum(spectrum.psd_unbiased_nm3[use]) * df)
+    return math.sqrt(var) if var > 0 else math.nan
+
+
+def _differs(values, rel=0.01):
+    values = [v for v in values if np.isfinite(v)]
+    return bool(values) and max(values) > min(values) * (1 + rel)
+
+
+def compare_groups(members: dict, options=None, *, analyses: dict | None = None,
+                   effect_3sigma_nm: float | None = None, power: float = 0.8) -> Comparison:
+    """Compare groups of analysed images.
+
+    Parameters
+    ----------
+    members : dict
+        ``{group name: [ImageAnalysis, ...]}`` in the order to report (at least two groups,
+        none empty).
+    options : AnalysisOptions, optional
+        Resamples, confidence, seed, noise-share target and frames.
+    analyses : dict, optional
+        ``{group name: GroupAnalysis}`` already reduced (computed otherwise).
+    effect_3sigma_nm : float, optional
+        The difference of unbiased 3-sigma to plan for; default 10% of the groups' mean
+        unbiased 3-sigma LER.
+    power : float
+
+    Returns
+    -------
+    Comparison
+    """
+    from .analysis import AnalysisOptions, analyse_group
+
+    options = options or AnalysisOptions()
+    if len(members) < 2:
+        raise ValueError(f"a comparison needs at least two groups, got {len(members)}")
+    for name, images in members.items():
+        if not images:
+            raise ValueError(f"group {name!r} has no measured image")
+    analyses = dict(analyses or {})
+    for name, images in members.items():
+        if name not in analyses:
+            analyses[name] = analyse_group(images, options, name=name)
+    rng = np.random.default_rng(options.seed)
+    estimates = tuple(estimate_group([im.lines for im in images], name=name,
+                                     n_resamples=max(options.n_resamples, 20), rng=rng)
+                      for name, images in members.items())
+    diffs = pairwise_differences(estimates, confidence=options.confidence)
+    if effect_3sigma_nm is None:
+        mean3 = np.nanmean([3 * e.value_nm["edge_sigma_unbiased_nm"] for e in estimates])
+        effect_3sigma_nm = 0.1 * float(mean3) if np.isfinite(mean3) and mean3 > 0 else math.nan
+    if np.isfinite(effect_3sigma_nm) and not effect_3sigma_nm > 0:
+        raise ValueError(f"effect_3sigma_nm={effect_3sigma_nm}: must be positive")
+    by_name = {e.name: e for e in estimates}
+    needed = tuple(units_needed(by_name[d.group_a], by_name[d.group_b], d.quantity, effect_nm=effect_3sigma_nm / 3,
+                                power=power, confidence=options.confidence)
+                   if np.isfinite(effect_3sigma_nm) else math.nan for d in diffs)
+    noise = []
+    for name in members:
+        s = analyses[name].summary
+        for q in ("edge", "width"):
+            v = s.quantity(q)
+            noise.append(noise_check(name, q, v.var_biased_nm2, v.var_noise_nm2,
+                                     target_fraction=options.noise_share_target, frames_now=options.frames))
+    spectra = [analyses[n].edge_psd for n in members if analyses[n].edge_psd is not None]
+    band = (math.nan, math.nan)
+    if spectra:
+        band = (max(float(s.frequency_per_nm[1]) for s in spectra), min(float(s.frequency_per_nm[-1]) for s in spectra))
+    band_sigma = tuple(_band_sigma(analyses[n].edge_psd, band) for n in members)
+    notes = _footing_notes(members, band)
+    return Comparison(estimates=estimates, differences=diffs, units_needed=needed, noise=tuple(noise),
+                      band_per_nm=band, band_sigma_unbiased_nm=band_sigma, notes=notes,
+                      effect_3sigma_nm=float(effect_3sigma_nm), power=power, confidence=options.confidence)
+
+
+def _footing_notes(members, band) -> tuple:
+    notes = []
+    spacing = {n: sorted({round(im.row_spacing_nm, 6) for im in ims}) for n, ims in members.items()}
+    lengths = {n: float(np.median([im.line_length_nm for im in ims])) for n, ims in members.items()}
+    if _differs([v for vals in spacing.values() for v in vals]):
+        text = ", ".join(f"{n} {'/'.join(f'{v:g}' for v in vals)} nm" for n, vals in spacing.items())
+        notes.append(("pixel_size_differs", f"the groups were imaged at different pixel sizes ({text}); the noise "
+                      "floor and the finite-length bias differ with it: compare the unbiased values, and the "
+                      f"band-limited sigma over {band[0]:.4g}-{band[1]:.4g} cycles/nm"))
+    if _differs(list(lengths.values()), rel=0.05):
+        text = ", ".join(f"{n} {v:.0f} nm" for n, v in lengths.items())
+        notes.append(("line_length_differs", f"the measured line lengths differ ({text}); a shorter line shows "
+                      "less of the long-wavelength roughness after detrending, so its sigma is lower for the "
+                      f"same edges: the band-limited sigma over {band[0]:.4g}-{band[1]:.4g} cycles/nm compares "
+                      "them on a common footing"))
+    for attr, label in (("detector", "edge detectors"), ("profile_model", "profile models")):
+        used = {n: sorted({getattr(im, attr) for im in ims}) for n, ims in members.items()}
+        if len({tuple(v) for v in used.values()}) > 1:
+            text = ", ".join(f"{n} {'/'.join(v)}" for n, v in used.items())
+            notes.append((f"{attr}_differs", f"the groups were measured with different {label} ({text}); "
+                          "a difference may come from the method, not the process"))
+    seen = {}
+    for n, ims in members.items():
+        for im in ims:
+            seen.setdefault(im.source, []).append(n)
+    shared = {s: g for s, g in seen.items() if len(set(g)) > 1}
+    if shared:
+        first = next(iter(shared))
+        notes.append(("shared_images", f"{len(shared)} image(s) belong to more than one group (e.g. {first} in "
+                      f"{' and '.join(dict.fromkeys(shared[first]))}): those groups are not independent and the "
+                      "tests between them are not valid"))
+    return tuple(notes)

@@ -2,9 +2,10 @@
 demo and simulate loop.  Everything here projects or drives the statistics of
 :mod:`roughness.analysis`; nothing here computes a roughness number itself.
 """
+from .comparing import compare
 from .runner import ImageResult, Measurement, measure
 from .settings import EXIT_OK, EXIT_SOME_FAILED, EXIT_USAGE, MeasureSettings, SettingsError
 from .simulate import simulate_images
 
-__all__ = ["measure", "Measurement", "ImageResult", "MeasureSettings", "SettingsError", "simulate_images",
+__all__ = ["measure", "compare", "Measurement", "ImageResult", "MeasureSettings", "SettingsError", "simulate_images",
            "EXIT_OK", "EXIT_USAGE", "EXIT_SOME_FAILED"]

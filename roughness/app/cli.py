@@ -21,7 +21,7 @@ from .demo import run_demo
 from .runner import expand_inputs, measure
 from .settings import DETECTORS, EXIT_OK, EXIT_SOME_FAILED, EXIT_USAGE, MeasureSettings, SettingsError
 from .simulate import simulate_images
-from .tables import summary_table
+from .tables import groups_table, summary_table
 
 __all__ = ["main", "build_parser"]
 
@@ -125,6 +125,12 @@ def _add_measure_options(p):
                    help=f"bootstrap resamples for confidence intervals (default {d.n_resamples})")
     p.add_argument("--confidence", type=float, default=None,
                    help=f"confidence level of the intervals (default {d.confidence})")
+    p.add_argument("--frames", type=int, default=None,
+                   help=f"frames averaged into each image as acquired, for the frames-needed advice (default {d.frames})")
+    p.add_argument("--noise-share-target", type=float, dest="noise_share_target", default=None, metavar="FRACTION",
+                   help="noise share of the variance above which a result is flagged and the frames needed are "
+                        f"given (default {d.noise_share_target}: {100 * (1 / (1 - d.noise_share_target) ** 0.5 - 1):.1f}%% "
+                        "inflation of 3-sigma)")
     p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
     p.add_argument("--resume", action="store_true",
                    help="reuse the per-image results kept in OUT/per_image from an earlier or interrupted "
@@ -142,7 +148,11 @@ def _add_measure(sub):
     c = sub.add_parser("compare", help="measure groups of images (recipes, resists, doses) side by side",
                        description="Measure several groups of images and compare their roughness.")
     c.add_argument("--group", action="append", required=True, metavar="NAME=PATTERN",
-                   help="a group: its name, '=', and a file, folder or glob pattern; repeat per group")
+                   help="a group: its name, '=', and a file, folder or quoted glob pattern, or an earlier "
+                        "quietedge output folder (its results are reused, not re-fitted); repeat per group")
+    c.add_argument("--effect", type=float, dest="effect_3sigma_nm", default=None, metavar="NM",
+                   help="difference of unbiased 3-sigma (nm) to plan the number of images for "
+                        "(default 10%% of the mean unbiased 3-sigma LER)")
     _add_measure_options(c)
     d = sub.add_parser("demo", help="run a small invented study end to end",
                        description="Simulate a small fictional resist-qualification study at two electron doses, "
@@ -187,17 +197,17 @@ def _print_headline(meas, out):
     print(f"results in {out}" + (f"; {len(meas.failures)} image(s) failed, see failures.csv" if meas.failures else ""))
 
 
-def _run_measure(args, groups=None) -> int:
+def _run_measure(args) -> int:
     settings = _settings(args)
     if args.workers < 1:
         raise SettingsError(f"--workers {args.workers}: must be >= 1")
-    given = [i for items in (groups.values() if groups else [args.images]) for i in items]
+    given = list(args.images)
     found = [p for p in expand_inputs(given) if Path(p).is_file()]
     if not found:
         raise SettingsError("no images found in " + ", ".join(repr(str(g)) for g in given) +
                             " (a folder must hold .tif, .tiff or .png files; quote patterns so that "
                             "quietedge expands them)")
-    meas = measure(None if groups else args.images, groups=groups, settings=settings, workers=args.workers,
+    meas = measure(args.images, settings=settings, workers=args.workers,
                    progress=not args.quiet, cache_dir=args.out / "per_image", resume=args.resume)
     meas.write(args.out, report=not args.no_report)
     if not args.quiet:
@@ -215,10 +225,52 @@ def _groups(specs) -> dict:
     groups = {}
     for spec in specs:
         name, sep, pattern = spec.partition("=")
+        name = name.strip()
         if not sep or not name or not pattern:
-            raise SettingsError(f"--group {spec!r}: expected NAME=PATTERN")
-        groups.setdefault(name, []).append(pattern)
+            raise SettingsError(f"--group {spec!r}: expected NAME=PATTERN (quote the pattern: --group 'A=imgs/a_*.tif')")
+        if name in groups:
+            raise SettingsError(f"--group {spec!r}: the name {name!r} is given twice; give each group one name "
+                                "and one pattern, or a folder")
+        if name.lower() == "all":
+            raise SettingsError(f"--group {spec!r}: 'all' is the name of every image together; choose another")
+        groups[name] = [pattern]
+    if len(groups) < 2:
+        raise SettingsError("compare needs at least two --group options")
     return groups
+
+
+def _run_compare(args) -> int:
+    from .comparing import comparison_sentences, compare, noise_sentences, power_sentences
+
+    settings = _settings(args)
+    if args.workers < 1:
+        raise SettingsError(f"--workers {args.workers}: must be >= 1")
+    groups = _groups(args.group)
+    meas = compare(groups, settings=settings, out=args.out, effect_3sigma_nm=args.effect_3sigma_nm,
+                   workers=args.workers, progress=not args.quiet, resume=args.resume, report=not args.no_report)
+    c = meas.comparison
+    if not args.quiet and meas.groups:
+        df = groups_table(meas)
+        cols = ["group", "n_images", "n_lines", "ler_3sigma_unbiased_nm", "ler_3sigma_unbiased_low_nm",
+                "ler_3sigma_unbiased_high_nm", "ler_3sigma_biased_nm", "lwr_3sigma_unbiased_nm",
+                "lwr_3sigma_biased_nm", "noise_fraction", "ler_noise_inflation"]
+        print(df[cols].to_string(index=False, float_format=lambda x: f"{x:.2f}"))
+    if c is not None:
+        print()
+        for text in comparison_sentences(c) + [t for t in noise_sentences(c) if "above" in t] + power_sentences(c):
+            print(text)
+        for code, text in c.notes:
+            print(f"note ({code}): {text}")
+    else:
+        measured = {g.name for g in meas.groups}
+        missing = [g for g in groups if g not in measured]
+        print(f"quietedge compare: no comparison: no image of group(s) {', '.join(missing)} could be measured "
+              "(see failures.csv)", file=sys.stderr)
+    print(f"results in {args.out}" + (f"; {len(meas.failures)} image(s) failed, see failures.csv" if meas.failures
+                                      else ""))
+    if c is None:
+        return EXIT_SOME_FAILED
+    return EXIT_SOME_FAILED if meas.failures else EXIT_OK
 
 
 def main(argv=None) -> int:
@@ -239,7 +291,7 @@ def main(argv=None) -> int:
             if args.command == "measure":
                 return _run_measure(args)
             if args.command == "compare":
-                return _run_measure(args, groups=_groups(args.group))
+                return _run_compare(args)
             return run_demo(args.out)
         except (ValueError, OSError) as exc:
             if args.debug:

@@ -18,8 +18,15 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from ..psd_model import PARAMETER_NAMES
+from .sentences import comparison_sentences, noise_sentences, power_sentences
 
-__all__ = ["write_report", "plot_psd", "plot_overlay", "plot_traces", "plot_precision"]
+__all__ = ["write_report", "plot_psd", "plot_overlay", "plot_traces", "plot_precision", "plot_forest",
+           "plot_group_psds"]
+
+#: One colour per group in the comparison figures, distinguishable with the common forms of
+#: colour-vision deficiency (blue / orange / bluish green / vermillion / sky blue / purple, after
+#: Okabe & Ito 2008, "Color Universal Design").
+_GROUP_COLOURS = ("#0072b2", "#e69f00", "#009e73", "#d55e00", "#56b4e9", "#cc79a7")
 
 _C = {"biased": "#b5562a", "floor": "#7a7a7a", "unbiased": "#1f5f8b", "model": "#2e8b57", "edge": "#f2c14e"}
 
@@ -196,6 +203,10 @@ th{background:#eef3f7}
 .facts{font-size:13px;line-height:1.5}
 .figs img{max-width:32%;margin-right:1%}
 .note{font-size:12px;color:#555}
+.figs2 img{max-width:49%;margin-right:1%;vertical-align:top}
+.answers li{font-size:15px;margin:4px 0}
+td.flag{background:#fde8dc}
+h3{font-size:14px;color:#1f5f8b}
 """
 
 
@@ -221,9 +232,11 @@ def write_report(meas, path) -> Path:
                  "image noise; unbiased = biased minus noise (variances subtract); the noise fraction is a share "
                  "of the variance, not of sigma. PSDs are one-sided. Check results "
                  "against your site's own metrology procedures before acting on them.</p>")
+    if meas.comparison is not None:
+        parts.append(_comparison_section(meas))
     g = meas.overall
     if g is not None:
-        parts.append("<h2>The whole set</h2>")
+        parts.append("<h2>All images together</h2>" if meas.comparison is not None else "<h2>The whole set</h2>")
         parts.append(_table(g.summary, g.psd_model))
         if g.n_grids > 1:
             parts.append(f"<p class='note'>The images have {g.n_grids} different row counts or pixel sizes: their "
@@ -239,7 +252,7 @@ def write_report(meas, path) -> Path:
                 plot_psd(axes[1], w.frequency_per_nm, w.psd_biased_nm3, w.noise_floor_spectrum_nm3, None,
                          title=f"widths, {w.n_traces} lines")
             parts.append(f"<div><img alt='pooled PSD' src='{_png(fig)}'></div>")
-        if len(meas.groups) > 1:
+        if len(meas.groups) > 1 and meas.comparison is None:
             parts.append(_groups_section(meas.groups, s))
     if meas.failures:
         parts.append("<h2>Images that could not be measured</h2><table><tr><th>image</th><th>reason</th></tr>")
@@ -314,4 +327,105 @@ def _groups_section(groups, settings) -> str:
     ax.set_ylabel("LER 3$\\sigma$ (nm)")
     ax.legend(frameon=False, fontsize=8)
     parts.append(f"<div><img alt='groups' src='{_png(fig)}'></div>")
+    return "".join(parts)
+
+
+def plot_forest(ax, comparison, *, quantities=("edge", "width")):
+    """Every pairwise difference (b - a, 3-sigma nm) with its interval: unbiased filled, biased open."""
+    labels, y = [], 0
+    names = {"edge": "LER", "width": "LWR", "centre": "placement"}
+    for q in quantities:
+        for d in [x for x in comparison.differences if x.quantity == f"{q}_sigma_unbiased_nm"]:
+            raw = comparison.difference(d.group_a, d.group_b, f"{q}_sigma_biased_nm")
+            for diff, style, off in ((d, dict(color=_C["unbiased"], fmt="o"), 0.15),
+                                     (raw, dict(color=_C["biased"], fmt="o", mfc="white"), -0.15)):
+                if np.isfinite(diff.difference_nm):
+                    lo, hi = 3 * diff.difference_low_nm, 3 * diff.difference_high_nm
+                    err = [[3 * diff.difference_nm - lo], [hi - 3 * diff.difference_nm]] if np.isfinite(lo) else None
+                    ax.errorbar(3 * diff.difference_nm, y + off, xerr=err, capsize=3, ms=5, **style)
+            labels.append(f"{names[q]}: {d.group_b} - {d.group_a}")
+            y += 1
+    ax.axvline(0, color="#444", lw=0.8)
+    ax.set_yticks(range(len(labels)), labels, fontsize=8)
+    ax.set_xlabel(f"difference of 3$\\sigma$ (nm), {100 * comparison.confidence:.0f}% intervals")
+    ax.errorbar([], [], xerr=[], color=_C["unbiased"], fmt="o", label="unbiased (noise removed)")
+    ax.errorbar([], [], xerr=[], color=_C["biased"], fmt="o", mfc="white", label="biased (raw)")
+    ax.legend(fontsize=7, frameon=False, loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=2)
+    ax.set_ylim(len(labels) - 0.5, -0.5)
+    ax.grid(True, axis="x", alpha=0.25)
+    return ax
+
+
+def plot_group_psds(ax, groups):
+    """Each group's pooled edge PSD: biased thin, unbiased bold, one colour per group."""
+    for k, g in enumerate(groups):
+        d = g.edge_psd
+        if d is None:
+            continue
+        colour = _GROUP_COLOURS[k % len(_GROUP_COLOURS)]
+        f, pb, pu = d.frequency_per_nm[1:], d.psd_biased_nm3[1:], d.psd_unbiased_nm3[1:]
+        ax.loglog(f, pb, color=colour, lw=0.8, alpha=0.6, ls="--", label=f"{g.name} biased")
+        pos = pu > 0
+        ax.loglog(f[pos], pu[pos], color=colour, lw=1.6, label=f"{g.name} unbiased")
+    ax.set_xlabel("spatial frequency (1/nm)")
+    ax.set_ylabel("edge PSD, one-sided (nm$^3$)")
+    ax.legend(fontsize=7, frameon=False, ncol=2)
+    ax.grid(True, which="both", alpha=0.2)
+    return ax
+
+
+def _ci3(lo, hi):
+    return f"{_fmt(3 * lo)} to {_fmt(3 * hi)}" if np.isfinite(lo) and np.isfinite(hi) else "not determined"
+
+
+def _comparison_section(meas) -> str:
+    esc = html.escape
+    c = meas.comparison
+    level = f"{100 * c.confidence:.0f}%"
+    parts = ["<h2>Comparison of groups</h2><ul class='answers'>"]
+    parts += [f"<li>{esc(t)}</li>" for t in comparison_sentences(c)]
+    parts.append("</ul>")
+    for code, text in c.notes:
+        parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
+    many = len(c.estimates) > 2
+    parts.append(f"<p class='note'>Differences are the second group minus the first, in 3&sigma; nm. Intervals and "
+                 f"p-values: Welch t on bootstrap standard errors, resampling whole images (the lines of a single "
+                 f"image for a group of one){'; p-values Holm-adjusted over the pairs' if many else ''}. "
+                 "All differences, biased and unbiased, with ratios, are in compare.csv.</p>")
+    parts.append("<table><tr><th>group</th><th>images</th><th>lines</th><th>LER 3&sigma; unbiased</th>"
+                 f"<th>{level} interval</th><th>LER 3&sigma; biased</th><th>LWR 3&sigma; unbiased</th>"
+                 f"<th>{level} interval</th><th>LWR 3&sigma; biased</th><th>noise share (LER variance)</th>"
+                 "<th>inflation of raw 3&sigma;</th><th>frames to target</th><th>xi (nm)</th><th>H</th></tr>")
+    checks = {(n.group, n.quantity): n for n in c.noise}
+    for g in meas.groups:
+        v, m = g.summary, g.psd_model
+        n = checks.get((g.name, "edge"))
+        xi = m.correlation_length_nm if (m is not None and not m.reason("correlation_length")) else math.nan
+        h = m.roughness_exponent if (m is not None and not m.reason("roughness_exponent")) else math.nan
+        flag = " class='flag'" if n is not None and n.flagged else ""
+        parts.append(
+            f"<tr><td>{esc(g.name)}</td><td>{g.n_images}</td><td>{v.n_lines}</td>"
+            f"<td><b>{_fmt(3 * v.edge.sigma_unbiased_nm)}</b></td>"
+            f"<td>{_ci3(v.edge.sigma_unbiased_low_nm, v.edge.sigma_unbiased_high_nm)}</td>"
+            f"<td>{_fmt(3 * v.edge.sigma_biased_nm)}</td><td><b>{_fmt(3 * v.width.sigma_unbiased_nm)}</b></td>"
+            f"<td>{_ci3(v.width.sigma_unbiased_low_nm, v.width.sigma_unbiased_high_nm)}</td>"
+            f"<td>{_fmt(3 * v.width.sigma_biased_nm)}</td><td{flag}>{_pct(v.edge.noise_fraction)}</td>"
+            f"<td{flag}>{_pct(n.inflation_3sigma) if n else 'not determined'}</td>"
+            f"<td>{_fmt(n.frames_needed, 1) if n and n.flagged else 'within target'}</td>"
+            f"<td>{_fmt(xi, 1)}</td><td>{_fmt(h)}</td></tr>")
+    parts.append("</table>")
+    figs = []
+    n_rows = sum(1 for d in c.differences if d.quantity in ("edge_sigma_unbiased_nm", "width_sigma_unbiased_nm"))
+    fig, ax = _figure(figsize=(5.2, 1.6 + 0.6 * n_rows))
+    plot_forest(ax, c)
+    figs.append(_png(fig))
+    fig, ax = _figure(figsize=(5.2, 3.6))
+    plot_group_psds(ax, meas.groups)
+    figs.append(_png(fig))
+    parts.append("<div class='figs2'>" + "".join(f"<img alt='comparison figure' src='{u}'>" for u in figs) + "</div>")
+    parts.append("<h3>Is noise inflating these numbers?</h3><ul>")
+    parts += [f"<li>{esc(t)}</li>" for t in noise_sentences(c)]
+    parts.append("</ul><h3>How many images would settle it?</h3><ul>")
+    parts += [f"<li>{esc(t)}</li>" for t in power_sentences(c)]
+    parts.append("</ul>")
     return "".join(parts)

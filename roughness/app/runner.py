@@ -8,10 +8,8 @@ the report (``Measurement.write``) only project them.
 from __future__ import annotations
 
 import glob
-import hashlib
-import json
 import os
-from dataclasses import asdict, dataclass, replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -19,8 +17,9 @@ import numpy as np
 from edges import EdgeTraces, Micrograph, MicrographError, fit_edges, read_micrograph, slope_edges, threshold_edges
 
 from ..analysis import GroupAnalysis, ImageAnalysis, analyse_group, analyse_image
+from ..differences import Comparison
 from .settings import MeasureSettings
-from .store import StoreError, load_result, save_result
+from .store import StoreError, load_result, result_file_name, save_result
 from .tables import write_outputs
 
 __all__ = ["ImageResult", "Measurement", "measure", "expand_inputs", "IMAGE_SUFFIXES"]
@@ -74,6 +73,9 @@ class Measurement:
         All measured images together (None when none was measured).
     groups : tuple of GroupAnalysis
         One per group when groups were given, in the order given; empty otherwise.
+    comparison : Comparison or None
+        Differences between the groups (:func:`roughness.app.comparing.compare`); None from
+        :func:`measure`.
     """
 
     images: tuple
@@ -81,6 +83,7 @@ class Measurement:
     settings: MeasureSettings
     overall: GroupAnalysis | None
     groups: tuple = ()
+    comparison: Comparison | None = None
 
     def write(self, out_dir, *, report: bool = True) -> Path:
         """Write the output folder (tables, settings, report) and return its path."""
@@ -195,8 +198,7 @@ class _Cache:
 
     def _path(self, job):
         item, k, settings, group = job
-        text = json.dumps({"image": _name(item, k), "group": group, "settings": asdict(settings)}, sort_keys=True)
-        return self.folder / f"{hashlib.sha1(text.encode()).hexdigest()[:20]}.npz"
+        return self.folder / result_file_name(_name(item, k), group, settings)
 
     def load(self, job):
         path = self._path(job)
@@ -251,6 +253,14 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
     >>> meas.overall.summary.n_lines, len(meas.failures)
     (4, 0)
     """
+    settings = _check(settings, pixel_size_nm, workers)
+    results, failures = _collect(groups if groups else {"": images}, settings, workers=workers, progress=progress,
+                                 cache_dir=cache_dir, resume=resume)
+    names = list(dict.fromkeys(str(g) for g in groups)) if groups else []
+    return reduce_results(results, failures, settings, names)
+
+
+def _check(settings, pixel_size_nm, workers) -> MeasureSettings:
     settings = settings or MeasureSettings()
     if not isinstance(settings, MeasureSettings):
         raise TypeError(f"settings: expected MeasureSettings, got {type(settings).__name__}")
@@ -258,19 +268,21 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
         settings = replace(settings, pixel_size_nm=pixel_size_nm)
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ValueError(f"workers={workers!r}: must be an integer >= 1")
+    return settings
+
+
+def _collect(groups: dict, settings: MeasureSettings, *, workers=1, progress=False, cache_dir=None,
+             resume=False, offset: int = 0):
+    """Measure ``{group: images}`` (group ``""`` without groups); (results in order, failures)."""
     workers = min(workers, os.cpu_count() or 1)          # never more processes than cores
     jobs = []
-    if groups:
-        for gname, items in groups.items():
-            if isinstance(items, (str, os.PathLike, np.ndarray, Micrograph)):
-                items = [items]
-            for item in expand_inputs(items):
-                jobs.append((item, len(jobs), settings, str(gname)))
-    else:
-        if images is None or isinstance(images, (str, os.PathLike, np.ndarray, Micrograph)):
-            images = [images] if images is not None else []
-        for item in expand_inputs(images):
-            jobs.append((item, len(jobs), settings, ""))
+    for gname, items in groups.items():
+        if items is None:
+            items = []
+        if isinstance(items, (str, os.PathLike, np.ndarray, Micrograph)):
+            items = [items]
+        for item in expand_inputs(items):
+            jobs.append((item, offset + len(jobs), settings, str(gname)))
     if not jobs:
         raise ValueError("no images given")
     results, failures = [], []
@@ -311,14 +323,16 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
     finally:
         if bar:
             bar.close()
-    order = {_name(j[0], j[1]): i for i, j in enumerate(jobs)}
-    results.sort(key=lambda r: order.get(r.name, 0))
+    order = {(_name(j[0], j[1]), j[3]): i for i, j in enumerate(jobs)}
+    results.sort(key=lambda r: order.get((r.name, r.group), 0))
+    return results, failures
+
+
+def reduce_results(results, failures, settings: MeasureSettings, group_names=()) -> Measurement:
+    """The set and group statistics of measured images, reduced once."""
     options = settings.analysis
     overall = analyse_group([r.analysis for r in results], options) if results else None
-    group_results = ()
-    if groups:
-        names = list(dict.fromkeys(str(g) for g in groups))
-        group_results = tuple(analyse_group([r.analysis for r in results if r.group == g], options, name=g)
-                              for g in names if any(r.group == g for r in results))
+    group_results = tuple(analyse_group([r.analysis for r in results if r.group == g], options, name=g)
+                          for g in group_names if any(r.group == g for r in results))
     return Measurement(images=tuple(results), failures=tuple(failures), settings=settings, overall=overall,
                        groups=group_results)

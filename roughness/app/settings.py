@@ -54,12 +54,14 @@ class MeasureSettings:
     orientation : {"auto", "vertical", "horizontal"}
     threshold_level : float
         Level of the threshold detector (fraction of the local plateau-to-plateau range).
-    detrend, psd_window, max_gap_rows, max_invalid_fraction, n_resamples, confidence, model_resamples, seed : 
+    detrend, psd_window, max_gap_rows, max_invalid_fraction, n_resamples, confidence, model_resamples, seed :
         See :class:`roughness.analysis.AnalysisOptions`.
     calibrated_cnr, noise_share_target, precision_target : float
         Policy of the analysis (see :class:`roughness.analysis.AnalysisOptions`).
     report_image_sections : int
         Images that get their own section with figures in the report (the first ones).
+    frames : int
+        Frames averaged into each image as acquired (see :class:`roughness.analysis.AnalysisOptions`).
     """
 
     pixel_size_nm: float | None = None
@@ -81,6 +83,7 @@ class MeasureSettings:
     noise_share_target: float = 0.10
     precision_target: float = 0.05
     report_image_sections: int = 12
+    frames: int = 1
 
     def __post_init__(self):
         def choice(name, allowed):

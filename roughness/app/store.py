@@ -8,6 +8,7 @@ from their fields.  Anything else in a file makes it unreadable (the image is me
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import importlib
 import json
 import os
@@ -15,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["ALLOWED", "StoreError", "save_result", "load_result"]
+__all__ = ["ALLOWED", "StoreError", "save_result", "load_result", "result_file_name"]
 
 #: The only types rebuilt from a file.
 ALLOWED = {
@@ -77,6 +78,13 @@ def _decode(node, arrays):
         cls = getattr(importlib.import_module(module), name)
         return cls(**{k: _decode(v, arrays) for k, v in node["f"].items()})
     raise StoreError("unknown entry in the stored structure")
+
+
+def result_file_name(name: str, group: str, settings) -> str:
+    """File name of an image's stored result: a hash of its name, its group and every setting
+    (a dataclass)."""
+    text = json.dumps({"image": name, "group": group, "settings": dataclasses.asdict(settings)}, sort_keys=True)
+    return f"{hashlib.sha1(text.encode()).hexdigest()[:20]}.npz"
 
 
 def save_result(path, result) -> Path:

@@ -18,10 +18,18 @@ import pandas as pd
 from ..analysis import SamplingAdvice
 from ..stats import QuantityRoughness, RoughnessSummary
 from .report import write_report
+from .store import result_file_name, save_result
 
-__all__ = ["summary_table", "edges_table", "psd_table", "failures_table", "groups_table", "write_outputs"]
+__all__ = ["summary_table", "edges_table", "psd_table", "failures_table", "groups_table", "compare_table",
+           "write_outputs"]
 
 _NAN = math.nan
+
+
+def _inflation(v: QuantityRoughness) -> float:
+    """By how much the noise inflates the biased 3-sigma: biased / unbiased - 1."""
+    u = v.sigma_unbiased_nm
+    return v.sigma_biased_nm / u - 1 if u > 0 else _NAN
 
 
 def _stat_columns(summary, model, advice, xi_acf=_NAN) -> dict:
@@ -38,6 +46,9 @@ def _stat_columns(summary, model, advice, xi_acf=_NAN) -> dict:
             f"{q}_var_unbiased_nm2": v.var_unbiased_nm2,
             f"{tag}_3sigma_biased_nm": 3 * v.sigma_biased_nm,
             f"{tag}_3sigma_unbiased_nm": 3 * v.sigma_unbiased_nm,
+            f"{tag}_3sigma_unbiased_low_nm": 3 * v.sigma_unbiased_low_nm,
+            f"{tag}_3sigma_unbiased_high_nm": 3 * v.sigma_unbiased_high_nm,
+            f"{tag}_noise_inflation": _inflation(v),
             f"{q}_status": v.status,
         })
     row["lr_correlation_biased"] = summary.lr_correlation_biased
@@ -85,11 +96,22 @@ def summary_table(meas) -> pd.DataFrame:
 def groups_table(meas) -> pd.DataFrame:
     """One row per group, or one row ``all`` for a measurement without groups."""
     groups = meas.groups or ((meas.overall,) if meas.overall is not None else ())
+    comp = meas.comparison
     rows = []
-    for g in groups:
+    for k, g in enumerate(groups):
         row = {"group": g.name or "all", "n_images": g.n_images}
         row.update(_stat_columns(g.summary, g.psd_model, g.advice))
         row["psd_grids"] = g.n_grids
+        row["noise_flag"] = bool(g.summary.edge.noise_fraction > meas.settings.noise_share_target)
+        row["frames"] = meas.settings.frames
+        if comp is not None:
+            e = comp.estimate(g.name)
+            row.update({"resampled_unit": e.unit, "n_resampled_units": e.n_units,
+                        "edge_sigma_unbiased_band_nm": comp.band_sigma_unbiased_nm[k],
+                        "band_low_per_nm": comp.band_per_nm[0], "band_high_per_nm": comp.band_per_nm[1]})
+            for q in ("edge", "width", "centre"):
+                for kind in ("unbiased", "biased"):
+                    row[f"{q}_sigma_{kind}_se_nm"] = e.se_nm[f"{q}_sigma_{kind}_nm"]
         rows.append(row)
     return pd.DataFrame(rows, columns=GROUP_COLUMNS)
 
@@ -119,23 +141,51 @@ def edges_table(meas) -> pd.DataFrame:
 
 
 def psd_table(meas) -> pd.DataFrame:
-    """The whole set's averaged PSDs (one-sided, nm^3 against cycles/nm) per quantity."""
-    g = meas.overall
-    if g is None:
+    """Averaged PSDs (one-sided, nm^3 against cycles/nm) per quantity: the whole set (group
+    ``all``), then every group."""
+    if meas.overall is None:
         return pd.DataFrame(columns=PSD_COLUMNS)
     parts = []
-    for q in ("edge", "width", "centre"):
-        s = g.spectrum(q)
-        if s is None:
-            continue
-        f = s.frequency_per_nm
-        model = g.psd_model.model_nm3(f) if (q == "edge" and g.psd_model is not None) else np.full(f.size, np.nan)
-        parts.append(pd.DataFrame({"quantity": q, "frequency_per_nm": f, "psd_biased_nm3": s.psd_biased_nm3,
-                                   "noise_floor_nm3": s.noise_floor_spectrum_nm3, "psd_unbiased_nm3": s.psd_unbiased_nm3,
-                                   "psd_model_nm3": model, "n_traces": s.n_traces, "n_images": s.n_images}))
+    for g in (meas.overall,) + tuple(meas.groups):
+        for q in ("edge", "width", "centre"):
+            s = g.spectrum(q)
+            if s is None:
+                continue
+            f = s.frequency_per_nm
+            model = g.psd_model.model_nm3(f) if (q == "edge" and g.psd_model is not None) else np.full(f.size, np.nan)
+            parts.append(pd.DataFrame({"group": g.name or "all", "quantity": q, "frequency_per_nm": f,
+                                       "psd_biased_nm3": s.psd_biased_nm3,
+                                       "noise_floor_nm3": s.noise_floor_spectrum_nm3, "psd_unbiased_nm3": s.psd_unbiased_nm3,
+                                       "psd_model_nm3": model, "n_traces": s.n_traces, "n_images": s.n_images}))
     if not parts:
         return pd.DataFrame(columns=PSD_COLUMNS)
     return pd.concat(parts, ignore_index=True)[PSD_COLUMNS]
+
+
+def compare_table(meas) -> pd.DataFrame:
+    """One row per pair of groups and quantity: ``group_b - group_a`` (1-sigma nm, and 3-sigma),
+    its interval, Welch p-value, Holm-adjusted p-value, and units per group for the planned
+    effect at the stated power."""
+    c = meas.comparison
+    if c is None:
+        return pd.DataFrame(columns=COMPARE_COLUMNS)
+    rows = []
+    for d, n in zip(c.differences, c.units_needed):
+        ea, eb = c.estimate(d.group_a), c.estimate(d.group_b)
+        rows.append({
+            "group_a": d.group_a, "group_b": d.group_b, "quantity": d.quantity,
+            "value_a_nm": d.value_a_nm, "value_b_nm": d.value_b_nm,
+            "difference_nm": d.difference_nm, "difference_low_nm": d.difference_low_nm,
+            "difference_high_nm": d.difference_high_nm, "difference_3sigma_nm": 3 * d.difference_nm,
+            "difference_3sigma_low_nm": 3 * d.difference_low_nm, "difference_3sigma_high_nm": 3 * d.difference_high_nm,
+            "ratio": d.ratio, "ratio_low": d.ratio_low, "ratio_high": d.ratio_high,
+            "se_nm": d.se_nm, "df": d.df, "p_value": d.p_value, "p_value_adjusted": d.p_value_adjusted,
+            "significant": d.significant, "confidence": d.confidence,
+            "test": "Welch t on bootstrap standard errors; Holm over pairs" if len(c.estimates) > 2
+                    else "Welch t on bootstrap standard errors",
+            "resampled_unit": ea.unit if ea.unit == eb.unit else "images", "n_units_a": ea.n_units, "n_units_b": eb.n_units,
+            "effect_3sigma_nm": c.effect_3sigma_nm, "power": c.power, "units_needed_per_group": n})
+    return pd.DataFrame(rows, columns=COMPARE_COLUMNS)
 
 
 def failures_table(meas) -> pd.DataFrame:
@@ -152,14 +202,22 @@ def _columns():
     summary = ["image", "group", "pixel_size_nm", "pixel_size_source"] + stats + [
         "edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "plateau_check",
         "row_noise_correlation", "precision_calibration", "shrinkage", "rows", "invalid_rows", "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
-    return summary, ["group", "n_images"] + stats + ["psd_grids"]
+    extra = ["psd_grids", "noise_flag", "frames", "resampled_unit", "n_resampled_units"]
+    extra += [f"{q}_sigma_{kind}_se_nm" for q in ("edge", "width", "centre") for kind in ("unbiased", "biased")]
+    extra += ["edge_sigma_unbiased_band_nm", "band_low_per_nm", "band_high_per_nm"]
+    return summary, ["group", "n_images"] + stats + extra
 
 
 SUMMARY_COLUMNS, GROUP_COLUMNS = _columns()
 EDGE_COLUMNS = ["image", "edge", "line", "side", "mean_position_nm", "sigma_biased_nm", "sigma_noise_nm",
                 "sigma_unbiased_nm", "var_unbiased_nm2", "fit_sigma_rms_nm", "contrast_to_noise", "valid_rows",
                 "invalid_rows", "exclusion", "flags", "achieved_sd_nm", "crlb_sd_nm", "shrinkage"]
-PSD_COLUMNS = ["quantity", "frequency_per_nm", "psd_biased_nm3", "noise_floor_nm3", "psd_unbiased_nm3",
+COMPARE_COLUMNS = ["group_a", "group_b", "quantity", "value_a_nm", "value_b_nm", "difference_nm", "difference_low_nm",
+                   "difference_high_nm", "difference_3sigma_nm", "difference_3sigma_low_nm",
+                   "difference_3sigma_high_nm", "ratio", "ratio_low", "ratio_high", "se_nm", "df", "p_value",
+                   "p_value_adjusted", "significant", "confidence", "test", "resampled_unit", "n_units_a",
+                   "n_units_b", "effect_3sigma_nm", "power", "units_needed_per_group"]
+PSD_COLUMNS = ["group", "quantity", "frequency_per_nm", "psd_biased_nm3", "noise_floor_nm3", "psd_unbiased_nm3",
                "psd_model_nm3", "n_traces", "n_images"]
 
 
@@ -175,6 +233,23 @@ def _versions():
     return out
 
 
+#: Where an output folder keeps each image's result (safe ``.npz``, see :mod:`roughness.app.store`).
+RESULTS_FOLDER = "per_image"
+
+
+def _store_results(meas, folder: Path) -> list:
+    """Every measured image's result in ``folder`` (already there from the batch's own store, or
+    written now), listed as [name, group, file] so that ``compare`` can reuse the folder."""
+    folder.mkdir(parents=True, exist_ok=True)
+    listed = []
+    for r in meas.images:
+        name = result_file_name(r.name, r.group, meas.settings)
+        if not (folder / name).exists():
+            save_result(folder / name, r)
+        listed.append([r.name, r.group, f"{RESULTS_FOLDER}/{name}"])
+    return listed
+
+
 def write_outputs(meas, out: Path, *, report: bool = True) -> Path:
     """Write summary, edges, psd, groups (and failures) CSV, settings.json and the report."""
     out.mkdir(parents=True, exist_ok=True)
@@ -183,13 +258,20 @@ def write_outputs(meas, out: Path, *, report: bool = True) -> Path:
     psd_table(meas).to_csv(out / "psd.csv", index=False)
     if meas.images:
         groups_table(meas).to_csv(out / "groups.csv", index=False)
+    cmp_path = out / "compare.csv"
+    if meas.comparison is not None:
+        compare_table(meas).to_csv(cmp_path, index=False)
+    elif cmp_path.exists():
+        cmp_path.unlink()       # a stale comparison from an earlier run would mislead
     fail = out / "failures.csv"
     if meas.failures:
         failures_table(meas).to_csv(fail, index=False)
     elif fail.exists():
         fail.unlink()           # a stale list from an earlier run would mislead
+    stored = _store_results(meas, out / RESULTS_FOLDER)
     settings = {"settings": asdict(meas.settings), "versions": _versions(),
                 "images": [r.name for r in meas.images], "failed": [f[0] for f in meas.failures],
+                "results": stored,
                 "written": datetime.now(timezone.utc).isoformat(timespec="seconds"),
                 "conventions": {"psd": "one-sided, nm^3 against cycles/nm; two-sided PSD(0) in *_two_sided_*",
                                 "sigma": "1-sigma in nm; 3sigma columns = 3 x sigma",
