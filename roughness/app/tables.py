@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from scipy.stats import t as student_t
 
 from ..analysis import SamplingAdvice
 from ..stats import QuantityRoughness, RoughnessSummary
@@ -60,6 +61,7 @@ def _stat_columns(summary, model, advice, xi_acf=_NAN) -> dict:
         "edge_roughness_exponent_se": model.roughness_exponent_se if model else _NAN,
         "edge_sigma_model_nm": model.sigma_nm if model else _NAN,
         "edge_psd0_nm3": model.psd0_nm3 if model else _NAN,
+        "edge_psd0_se_nm3": model.psd0_se_nm3 if model else _NAN,
         "edge_psd0_two_sided_nm3": model.psd0_two_sided_nm3 if model else _NAN,
         "edge_correlation_length_acf_nm": xi_acf,
         "edge_psd_floor_mode": model.floor_mode if model else "",
@@ -101,6 +103,9 @@ def groups_table(meas) -> pd.DataFrame:
     for k, g in enumerate(groups):
         row = {"group": g.name or "all", "n_images": g.n_images}
         row.update(_stat_columns(g.summary, g.psd_model, g.advice))
+        members = set(g.sources)
+        row["rows"] = sum(r.analysis.n_rows for r in meas.images
+                          if r.analysis.source in members and (not g.name or r.group == g.name))
         row["psd_grids"] = g.n_grids
         row["noise_flag"] = bool(g.summary.edge.noise_fraction > meas.settings.noise_share_target)
         row["frames"] = meas.settings.frames
@@ -109,9 +114,12 @@ def groups_table(meas) -> pd.DataFrame:
             row.update({"resampled_unit": e.unit, "n_resampled_units": e.n_units,
                         "edge_sigma_unbiased_band_nm": comp.band_sigma_unbiased_nm[k],
                         "band_low_per_nm": comp.band_per_nm[0], "band_high_per_nm": comp.band_per_nm[1]})
+            t = float(student_t.ppf(0.5 * (1 + comp.confidence), e.df))
             for q in ("edge", "width", "centre"):
                 for kind in ("unbiased", "biased"):
                     row[f"{q}_sigma_{kind}_se_nm"] = e.se_nm[f"{q}_sigma_{kind}_nm"]
+                value, se = e.value_nm[f"{q}_sigma_biased_nm"], e.se_nm[f"{q}_sigma_biased_nm"]
+                row[f"{q}_sigma_biased_low_nm"], row[f"{q}_sigma_biased_high_nm"] = value - t * se, value + t * se
         rows.append(row)
     return pd.DataFrame(rows, columns=GROUP_COLUMNS)
 
@@ -202,8 +210,9 @@ def _columns():
     summary = ["image", "group", "pixel_size_nm", "pixel_size_source"] + stats + [
         "edge_sigma_model_finite_nm", "noise_floor_nm3", "plateau_nm3", "floors_disagree", "plateau_check",
         "row_noise_correlation", "precision_calibration", "shrinkage", "rows", "invalid_rows", "bridged_rows", "excluded_edges", "detector", "profile_model", "status", "warnings"]
-    extra = ["psd_grids", "noise_flag", "frames", "resampled_unit", "n_resampled_units"]
+    extra = ["rows", "psd_grids", "noise_flag", "frames", "resampled_unit", "n_resampled_units"]
     extra += [f"{q}_sigma_{kind}_se_nm" for q in ("edge", "width", "centre") for kind in ("unbiased", "biased")]
+    extra += [f"{q}_sigma_biased_{end}_nm" for q in ("edge", "width", "centre") for end in ("low", "high")]
     extra += ["edge_sigma_unbiased_band_nm", "band_low_per_nm", "band_high_per_nm"]
     return summary, ["group", "n_images"] + stats + extra
 

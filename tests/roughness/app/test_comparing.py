@@ -140,3 +140,25 @@ def test_frames_advice_follows_one_over_frames():
     # only the noise realisations differ: ~0.02 nm^2 sd on ~0.9 nm^2 (measured within 1%)
     predicted = one.var_unbiased_nm2 + one.var_noise_nm2 / 4
     assert four.var_biased_nm2 == pytest.approx(predicted, rel=0.04)
+
+
+def test_groups_at_different_pixel_sizes_are_compared_with_a_note(tmp_path):
+    rng = np.random.default_rng(11)
+    imgs = {}
+    for name, px in (("fine", 0.8), ("coarse", 1.2)):
+        imgs[name] = [simulate_line_space(n_rows=256, n_cols=320, pitch_nm=40 * px, cd_nm=20 * px, sigma_nm=px,
+                                          correlation_length_nm=8 * px, roughness_exponent=0.6,
+                                          settings=SEMSettings(pixel_size_nm=px, dose_per_pixel=200, blur_nm=2 * px),
+                                          rng=rng)[0] for _ in range(2)]
+    from edges import Micrograph
+
+    groups = {n: [Micrograph(pixels=p, pixel_size_nm=px, source=f"{n}{k}") for k, p in enumerate(v)]
+              for (n, v), px in zip(imgs.items(), (0.8, 1.2))}
+    meas = compare(groups, settings=FAST, out=tmp_path / "o")
+    codes = [c for c, _ in meas.comparison.notes]
+    assert "pixel_size_differs" in codes
+    g = pd.read_csv(tmp_path / "o" / "groups.csv").set_index("group")
+    # the band every group covers: from the coarsest resolution to the lowest Nyquist frequency
+    assert g.loc["fine", "band_high_per_nm"] == pytest.approx(0.5 / 1.2, rel=0.02)
+    assert g.loc["fine", "band_low_per_nm"] == pytest.approx(1 / (256 * 0.8), rel=0.02)
+    assert (g["rows"] == 512).all() and (g["edge_sigma_biased_low_nm"] < g["edge_sigma_biased_nm"]).all()
