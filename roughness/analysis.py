@@ -529,8 +529,15 @@ def _warnings(summary: RoughnessSummary, model, traces: EdgeTraces, length_nm, n
                                        "to ~25% (or LER shrunk, in the narrowest windows); a smaller pixel helps"))
     low = int(np.count_nonzero(traces.contrast_to_noise < LOW_CONTRAST_CNR))
     if low:
-        out.append(("low_contrast", f"{low} edges have contrast-to-noise below {LOW_CONTRAST_CNR:g}: their "
-                                    "uncertainties are under-stated and the noise floor is too low"))
+        study = traces.precision
+        if study is not None and study.applied_calibration != 1.0:
+            fix = (f"the virtual twin measured the real scatter and scaled the floor by "
+                   f"{study.applied_calibration:.2f}; more frames or dose would still tighten the numbers")
+        elif study is not None:
+            fix = "the virtual twin found the fit's uncertainties right at this dose"
+        else:
+            fix = "the linearised uncertainties under-state the scatter there and the noise floor is too low"
+        out.append(("low_contrast", f"{low} edges have contrast-to-noise below {LOW_CONTRAST_CNR:g}: {fix}"))
     return out
 
 

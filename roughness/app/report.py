@@ -23,12 +23,17 @@ from .sentences import comparison_sentences, noise_sentences, power_sentences
 __all__ = ["write_report", "plot_psd", "plot_overlay", "plot_traces", "plot_precision", "plot_forest",
            "plot_group_psds"]
 
-#: One colour per group in the comparison figures, distinguishable with the common forms of
-#: colour-vision deficiency (blue / orange / bluish green / vermillion / sky blue / purple, after
-#: Okabe & Ito 2008, "Color Universal Design").
-_GROUP_COLOURS = ("#0072b2", "#e69f00", "#009e73", "#d55e00", "#56b4e9", "#cc79a7")
+#: One colour per group in the comparison figures (apart from the meanings of ``_C``; biased
+#: dashed and unbiased solid tell the two apart within a group).
+_GROUP_COLOURS = ("#0b6e4f", "#b5176b", "#6b4f1d", "#4457d1", "#8a9a06", "#555555")
 
-_C = {"biased": "#b5562a", "floor": "#7a7a7a", "unbiased": "#1f5f8b", "model": "#2e8b57", "edge": "#f2c14e"}
+#: One colour per meaning, the same in every figure and table of the report: measured (biased)
+#: values, the noise floor and anything the fit covariance says about noise, noise-free
+#: (unbiased) values, theory (the PSD model, the Cramer-Rao bound), left and right edges, and
+#: the virtual twin's achieved precision.  Chosen to stay apart in lightness and hue for the
+#: common colour-vision deficiencies (checked by eye in a deuteranopia simulation).
+_C = {"biased": "#d4700a", "floor": "#7a7a7a", "unbiased": "#1c4f9c", "model": "#111111",
+      "left": "#d9a800", "right": "#17b3c2", "achieved": "#8e44ad"}
 
 
 def _png(fig) -> str:
@@ -61,8 +66,9 @@ def plot_psd(ax, frequency_per_nm, psd_biased_nm3, floor_nm3, model=None, *, tit
     ax.loglog(f[pos], pu[pos], ".", ms=2.5, color=_C["unbiased"], label="unbiased (floor removed)")
     if model is not None:
         xi = (f"xi {model.correlation_length_nm:.1f} nm" if np.isfinite(model.correlation_length_nm)
-              else "xi not determined")
-        h = f"H {model.roughness_exponent:.2f}" if model.h_determined else "H not determined"
+              and not model.reason("correlation_length") else "xi not determined")
+        h = (f"H {model.roughness_exponent:.2f}" if model.h_determined and not model.reason("roughness_exponent")
+             else "H not determined")
         band = (f >= model.fit_min_per_nm) & (f <= model.fit_max_per_nm)
         ax.loglog(f[band], model.model_nm3(f[band]), color=_C["model"], lw=1.5, label=f"model: {xi}, {h}")
     ax.set_xlabel("spatial frequency (1/nm)")
@@ -77,9 +83,9 @@ def plot_precision(ax, edges):
     """Per edge: the real scatter of a row's position (precision study), the Cramer-Rao bound
     and the fit's rms uncertainty as reported; returns ``ax``."""
     k = np.arange(np.asarray(edges.line).size)
-    ax.plot(k, edges.achieved_sd_nm, "o", ms=4, color=_C["biased"], label="achieved (virtual twin)")
+    ax.plot(k, edges.achieved_sd_nm, "o", ms=4, color=_C["achieved"], label="achieved (virtual twin)")
     ax.plot(k, edges.crlb_sd_nm, "_", ms=10, mew=2, color=_C["model"], label="Cramér–Rao bound")
-    ax.plot(k, edges.fit_sigma_rms_nm, "x", ms=4, color=_C["unbiased"], label="reported uncertainty (rms)")
+    ax.plot(k, edges.fit_sigma_rms_nm, "x", ms=4, color=_C["floor"], label="reported uncertainty (rms)")
     ax.set_xlabel("edge (left to right)")
     ax.set_ylabel("position sd of one row (nm)")
     ax.set_ylim(bottom=0)
@@ -106,17 +112,31 @@ def _precision_text(a) -> str:
 
 
 def plot_overlay(ax, pixels, traces, *, max_rows=512):
-    """The image (rows along the lines) with the fitted edge positions over it; returns ``ax``."""
+    """The image (rows along the lines) at its true aspect ratio with the fitted edges over it
+    (left edges and right edges in their own colours) and a scale bar; returns ``ax``."""
     rows = min(pixels.shape[0], max_rows)
     p = traces.row_spacing_nm
-    ax.imshow(pixels[:rows], cmap="gray", aspect="auto", interpolation="nearest",
+    width = pixels.shape[1] * p
+    ax.imshow(pixels[:rows], cmap="gray", aspect="equal", interpolation="nearest",
               extent=(-0.5 * p, (pixels.shape[1] - 0.5) * p, (rows - 0.5) * p, -0.5 * p))
     y = np.arange(rows) * p
     for e in range(traces.n_edges):
-        ax.plot(traces.position_nm[e, :rows], y, color=_C["edge"], lw=0.6)
+        ax.plot(traces.position_nm[e, :rows], y, color=_C["left" if traces.side[e] == "left" else "right"], lw=0.7)
+    bar = _nice_length(width / 5)
+    x0, y0 = 0.05 * width, 0.94 * rows * p
+    ax.plot([x0, x0 + bar], [y0, y0], color="white", lw=3, solid_capstyle="butt")
+    ax.text(x0 + bar / 2, y0 - 0.02 * rows * p, f"{bar:g} nm", color="white", ha="center", va="bottom", fontsize=8)
     ax.set_xlabel("across the lines (nm)")
     ax.set_ylabel("along the lines (nm)")
+    ax.set_xlim(-0.5 * p, (pixels.shape[1] - 0.5) * p)
+    ax.set_ylim((rows - 0.5) * p, -0.5 * p)
     return ax
+
+
+def _nice_length(x):
+    """1, 2 or 5 times a power of ten, at most ``x``."""
+    e = 10 ** math.floor(math.log10(x))
+    return max(m * e for m in (1, 2, 5) if m * e <= x)
 
 
 def plot_traces(ax, traces, *, n_edges=6):
@@ -128,7 +148,7 @@ def plot_traces(ax, traces, *, n_edges=6):
         if ok.sum() < 3:
             continue
         dev = x - np.polyval(np.polyfit(y[ok], x[ok], 1), y)
-        ax.plot(y, dev + 8 * k, lw=0.6, color=_C["unbiased"] if traces.side[e] == "left" else _C["biased"])
+        ax.plot(y, dev + 8 * k, lw=0.6, color=_C["left"] if traces.side[e] == "left" else _C["right"])
     ax.set_xlabel("along the line (nm)")
     ax.set_ylabel("edge deviation, offset by 8 nm each (nm)")
     return ax
@@ -193,20 +213,28 @@ def _table(summary, model, finite_nm=math.nan):
 
 _CSS = """
 body{font-family:Helvetica,Arial,sans-serif;margin:24px 40px;color:#222;max-width:1100px}
-h1{font-size:22px;border-bottom:3px solid #1f5f8b;padding-bottom:6px}
-h2{font-size:17px;color:#1f5f8b;margin-top:30px}
+h1{font-size:22px;border-bottom:3px solid #1c4f9c;padding-bottom:6px;margin-bottom:8px}
+h2{font-size:17px;color:#1c4f9c;margin-top:30px}
 table{border-collapse:collapse;margin:8px 0;font-size:13px}
 td,th{border:1px solid #ccc;padding:4px 8px;text-align:right}
 td:first-child,th:first-child{text-align:left}
 th{background:#eef3f7}
 .warn{background:#fff4e0;border-left:4px solid #e0a030;padding:6px 10px;margin:6px 0;font-size:13px}
 .facts{font-size:13px;line-height:1.5}
-.figs img{max-width:32%;margin-right:1%}
+.figs{display:flex;flex-wrap:wrap;gap:8px;align-items:flex-start}
+.figs figure{margin:0;width:32%}
+.figs img{max-width:100%}
+figcaption{font-size:11px;color:#555}
+.verdict{border:2px solid #1c4f9c;border-radius:6px;padding:4px 16px 8px;background:#f4f7fb}
+.verdict h2{margin-top:8px}
+.verdict td.big{font-size:18px;font-weight:bold;color:#1c4f9c}
+.answer{font-size:15px}
+footer{font-size:11px;color:#555;margin-top:30px;border-top:1px solid #ccc;padding-top:8px}
 .note{font-size:12px;color:#555}
 .figs2 img{max-width:49%;margin-right:1%;vertical-align:top}
 .answers li{font-size:15px;margin:4px 0}
 td.flag{background:#fde8dc}
-h3{font-size:14px;color:#1f5f8b}
+h3{font-size:14px;color:#1c4f9c}
 """
 
 
@@ -216,28 +244,175 @@ def _figure(*, figsize, ncols=1):
     return fig, axes
 
 
+_STATUS_WORDS = {
+    "ok": "measured",
+    "warning": "measured, with warnings to read",
+    "noise_dominated": "noise dominates: the unbiased value rests on a small difference and is not a confident number",
+    "below_noise": "roughness at or below the noise: not measurable at this dose",
+    "not_measured": "not measured",
+}
+
+
+def _inflation(v) -> float:
+    u = v.sigma_unbiased_nm
+    return v.sigma_biased_nm / u - 1 if u > 0 else math.nan
+
+
+def _action(meas, g) -> str:
+    """The one action that would most improve the numbers of group ``g``."""
+    s, v = meas.settings, g.summary.edge
+    frames = g.advice.frames_for_noise_target
+    if v.status in ("below_noise", "not_measured"):
+        return "Raise the signal: average more frames or raise the dose until the edges stand above the noise."
+    if np.isfinite(v.noise_fraction) and v.noise_fraction > s.noise_share_target:
+        how = f"about {math.ceil(frames)} frames (now {s.frames})" if np.isfinite(frames) else "more frames"
+        return (f"Cut the image noise: {how}, or that many times the dose, would bring the noise share of the "
+                f"variance under {100 * s.noise_share_target:.0f}% (more dose can shrink or damage resist).")
+    lo, hi = v.sigma_unbiased_low_nm, v.sigma_unbiased_high_nm
+    rel = (hi - lo) / (2 * v.sigma_unbiased_nm) if np.isfinite(lo) and np.isfinite(hi) and v.sigma_unbiased_nm > 0 \
+        else math.nan
+    if np.isfinite(rel) and rel > 2 * s.precision_target:
+        lines = g.advice.lines_for_precision_target
+        more = f"about {lines:.0f} lines of this length" if np.isfinite(lines) else "more lines or images"
+        return (f"Measure more: the interval is &plusmn;{100 * rel:.0f}% of the value; {more} would give "
+                f"&plusmn;{100 * s.precision_target:.0f}% (1 sd).")
+    warned = [r for r in meas.images if r.analysis.warnings and (not g.name or r.group == g.name)]
+    if warned:
+        return f"Read the warnings of {len(warned)} image(s) in the table below before relying on the numbers."
+    return "None needed: the noise share is under the target and the interval is tight."
+
+
+def _verdict(meas) -> str:
+    """The first screen: unbiased LER/LWR with intervals, noise share and inflation, status, action."""
+    esc = html.escape
+    groups = meas.groups if meas.comparison is not None else ((meas.overall,) if meas.overall else ())
+    if not groups:
+        return ("<div class='verdict'><b>No image could be measured.</b> The reasons are listed below and in "
+                "failures.csv.</div>")
+    statuses = {}
+    for r in meas.images:
+        statuses.setdefault(r.analysis.status, []).append(r)
+    rows = []
+    for g in groups:
+        v = g.summary
+        label = f"<td>{esc(g.name)}</td>" if meas.comparison is not None else ""
+        rows.append(f"<tr>{label}<td class='big'>{_fmt(3 * v.edge.sigma_unbiased_nm)} nm</td><td>{_ci(v.edge)}</td>"
+                    f"<td class='big'>{_fmt(3 * v.width.sigma_unbiased_nm)} nm</td><td>{_ci(v.width)}</td>"
+                    f"<td>{_pct(v.edge.noise_fraction)} of the variance: raw 3&sigma; {_plus(_inflation(v.edge))}"
+                    f"</td><td>{esc(_STATUS_WORDS.get(v.edge.status, v.edge.status))}</td></tr>")
+    head = "<th>group</th>" if meas.comparison is not None else ""
+    level = f"{100 * meas.settings.confidence:.0f}%"
+    counts = ", ".join(f"{len(v)} {esc(k.replace('_', ' '))}" for k, v in sorted(statuses.items()))
+    actions = "".join(f"<li>{esc(g.name) + ': ' if meas.comparison is not None else ''}{_action(meas, g)}</li>"
+                      for g in groups)
+    first = ""
+    if meas.comparison is not None:
+        from .sentences import comparison_sentences
+
+        first = "<p class='answer'>" + esc(comparison_sentences(meas.comparison, quantities=("edge",))[0]) + "</p>"
+    return ("<div class='verdict' id='verdict'><h2>Verdict</h2>" + first +
+            f"<table><tr>{head}<th>LER 3&sigma; unbiased</th><th>{level} interval</th><th>LWR 3&sigma; unbiased</th>"
+            f"<th>{level} interval</th><th>noise and what it does to 3&sigma;</th><th>status</th></tr>"
+            + "".join(rows) + "</table>"
+            f"<p>Images: {len(meas.images)} measured ({counts}), {len(meas.failures)} failed.</p>"
+            f"<p><b>What would most improve the numbers:</b></p><ul>{actions}</ul></div>")
+
+
+def _plus(x):
+    return "inflated by not determined" if not np.isfinite(x) else f"inflated by {100 * x:.1f}%"
+
+
+def _images_table(meas) -> str:
+    """Every measured image in one sortable table (click a heading)."""
+    esc = html.escape
+    head = ["image", "group", "pixel (nm)", "lines", "LER 3&sigma; unbiased", "LWR 3&sigma; unbiased",
+            "LER 3&sigma; biased", "noise share", "status", "warnings"]
+    parts = ["<h2>Every image</h2><p class='note'>Click a heading to sort. Values in nm; the noise share is of "
+             "the edge variance. Images with a section of their own are linked.</p><table class='sortable'><thead><tr>"
+             + "".join(f"<th>{h}</th>" for h in head) + "</tr></thead><tbody>"]
+    for k, r in enumerate(meas.images):
+        a, v = r.analysis, r.analysis.summary
+        name = esc(r.name)
+        if k < meas.settings.report_image_sections:
+            name = f"<a href='#img{k}'>{name}</a>"
+        cells = [name, esc(r.group), f"{r.pixel_size_nm:.4g} ({esc(r.pixel_size_source)})", str(v.n_lines),
+                 _fmt(3 * v.edge.sigma_unbiased_nm), _fmt(3 * v.width.sigma_unbiased_nm),
+                 _fmt(3 * v.edge.sigma_biased_nm), _pct(v.edge.noise_fraction), esc(a.status),
+                 esc(", ".join(a.warning_codes))]
+        parts.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    parts.append("</tbody></table>")
+    return "".join(parts)
+
+
+def _footer(meas) -> str:
+    esc = html.escape
+    from datetime import datetime, timezone
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        ver = version("quietedge")
+    except PackageNotFoundError:      # a source tree that is not installed
+        ver = "unknown (not installed)"
+    px = sorted({(round(r.pixel_size_nm, 6), r.pixel_size_source) for r in meas.images})
+    pixel = "; ".join(f"{p:g} nm ({esc(src)})" for p, src in px) or "none"
+    settings = ", ".join(f"{k} = {esc(repr(v))}" for k, v in sorted(vars(meas.settings).items()))
+    return (f"<footer><b>Provenance.</b> Written {datetime.now(timezone.utc).strftime('%Y-%m-%d %H:%M UTC')} by "
+            f"quietedge {esc(ver)}. Pixel size: {pixel}. Settings: {settings}. Everything needed to reproduce the "
+            "run is in settings.json beside this report.</footer>")
+
+
+_SORT_JS = """
+document.querySelectorAll('table.sortable th').forEach(function (th, col) {
+  th.style.cursor = 'pointer';
+  th.addEventListener('click', function () {
+    var body = th.closest('table').tBodies[0];
+    var rows = Array.prototype.slice.call(body.rows);
+    var up = th.dataset.dir !== 'up';
+    th.dataset.dir = up ? 'up' : 'down';
+    rows.sort(function (a, b) {
+      var x = a.cells[col].textContent, y = b.cells[col].textContent;
+      var nx = parseFloat(x), ny = parseFloat(y);
+      var c = (!isNaN(nx) && !isNaN(ny)) ? nx - ny : x.localeCompare(y);
+      return up ? c : -c;
+    });
+    rows.forEach(function (r) { body.appendChild(r); });
+  });
+});
+"""
+
+
 def write_report(meas, path) -> Path:
     """Write the HTML report of a Measurement to ``path`` (a projection: nothing is recomputed).
 
-    The first ``meas.settings.report_image_sections`` images get a section with figures.
+    Top down: the verdict, the comparison (when groups were compared), every image in one
+    table, the set's PSDs, failures, a section per image for the first
+    ``meas.settings.report_image_sections`` images, and the provenance.
     """
     esc = html.escape
     s = meas.settings
-    parts = [f"<!DOCTYPE html><html><head><meta charset='utf-8'><title>quietedge roughness report</title>"
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>quietedge roughness report</title>"
              f"<style>{_CSS}</style></head><body><h1>Roughness report</h1>"]
+    parts.append(_verdict(meas))
     profile = f" ({esc(s.profile_model)} profile)" if s.detector == "model" else ""
-    parts.append(f"<p class='note'>{len(meas.images)} image(s) measured, {len(meas.failures)} failed. Detector: "
-                 f"{esc(s.detector)}{profile}, detrend {esc(s.detrend)}, PSD window "
-                 f"{esc(s.psd_window)}. Biased = as measured; noise = the part the edge-fit covariance attributes to "
-                 "image noise; unbiased = biased minus noise (variances subtract); the noise fraction is a share "
-                 "of the variance, not of sigma. PSDs are one-sided. Check results "
-                 "against your site's own metrology procedures before acting on them.</p>")
+    parts.append(f"<p class='note'>Detector: {esc(s.detector)}{profile}, detrend {esc(s.detrend)}, PSD window "
+                 f"{esc(s.psd_window)}. <b>Biased</b> = as measured; <b>noise</b> = the part the edge-fit covariance "
+                 "attributes to image noise; <b>unbiased</b> = biased minus noise (variances subtract). The noise "
+                 "share is a share of the <i>variance</i>; the raw 3&sigma; is inflated by 1/&radic;(1 &minus; share) "
+                 "(a 21% share inflates it by 12.5%). PSDs are one-sided. Check results against your site's own "
+                 "metrology procedures before acting on them.</p>")
     if meas.comparison is not None:
         parts.append(_comparison_section(meas))
+    if meas.images:
+        parts.append(_images_table(meas))
     g = meas.overall
     if g is not None:
         parts.append("<h2>All images together</h2>" if meas.comparison is not None else "<h2>The whole set</h2>")
         parts.append(_table(g.summary, g.psd_model))
+        if g.n_images > 1:
+            parts.append(f"<p class='note'>The interval comes from resampling the {g.n_images} images as wholes: "
+                         "it is the spread between images, which is why it is wider than one image's own "
+                         "interval (that one only sees the spread between the lines of one image). With few "
+                         "images it is wide; that is honest, not a defect.</p>")
         if g.n_grids > 1:
             parts.append(f"<p class='note'>The images have {g.n_grids} different row counts or pixel sizes: their "
                          "PSDs were interpolated onto the coarsest frequency resolution, up to the lowest Nyquist "
@@ -251,7 +426,7 @@ def write_report(meas, path) -> Path:
                 w = g.width_psd
                 plot_psd(axes[1], w.frequency_per_nm, w.psd_biased_nm3, w.noise_floor_spectrum_nm3, None,
                          title=f"widths, {w.n_traces} lines")
-            parts.append(f"<div><img alt='pooled PSD' src='{_png(fig)}'></div>")
+            parts.append(f"<div><img alt='PSDs of all images' src='{_png(fig)}'></div>")
         if len(meas.groups) > 1 and meas.comparison is None:
             parts.append(_groups_section(meas.groups, s))
     if meas.failures:
@@ -261,40 +436,54 @@ def write_report(meas, path) -> Path:
         parts.append("</table>")
     for k, r in enumerate(meas.images):
         if k == s.report_image_sections:
-            parts.append(f"<p class='note'>{len(meas.images) - k} more image(s) are in summary.csv; "
-                         "figures are drawn for the first ones only.</p>")
+            parts.append(f"<p class='note'>{len(meas.images) - k} more image(s) are in the table above and in "
+                         "summary.csv; figures are drawn for the first ones only.</p>")
             break
-        a = r.analysis
-        parts.append(f"<h2>{esc(r.name)}</h2>")
-        if np.isfinite(r.pixel_size_nm):
-            parts.append(f"<p class='note'>pixel size {r.pixel_size_nm:.4g} nm ({esc(r.pixel_size_source)})</p>")
-        for code, text in a.warnings:
-            parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
-        parts.append(_table(a.summary, a.psd_model, a.model_sigma_finite_nm))
-        figs = []
-        if r.preview is not None and r.traces is not None:
-            fig, ax = _figure(figsize=(4, 4))
-            plot_overlay(ax, r.preview, r.traces)
-            figs.append(_png(fig))
-        if r.traces is not None:
-            fig, ax = _figure(figsize=(4, 4))
-            plot_traces(ax, r.traces)
-            figs.append(_png(fig))
-        fig, ax = _figure(figsize=(4, 4))
-        e = a.edge_psd
-        plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, e.mean_floor_spectrum_nm3, a.psd_model, title="edge PSD")
-        figs.append(_png(fig))
-        if np.any(np.isfinite(a.edges.achieved_sd_nm)):
-            fig, ax = _figure(figsize=(4, 4))
-            plot_precision(ax, a.edges)
-            figs.append(_png(fig))
-            parts.append(_precision_text(a))
-        parts.append("<div class='figs'>" + "".join(f"<img alt='figure' src='{u}'>" for u in figs) + "</div>")
+        parts.append(_image_section(k, r))
     parts.append("<p class='note'>Extra frames or a higher dose cut image noise but can shrink or damage resist "
-                 "lines, which changes the roughness being measured.</p></body></html>")
+                 "lines, which changes the roughness being measured.</p>")
+    parts.append(_footer(meas))
+    parts.append(f"<script>{_SORT_JS}</script></body></html>")
     path = Path(path)
     path.write_text("\n".join(parts), encoding="utf-8")
     return path
+
+
+def _image_section(k, r) -> str:
+    esc = html.escape
+    a = r.analysis
+    parts = [f"<h2 id='img{k}'>{esc(r.name)}</h2>"]
+    if np.isfinite(r.pixel_size_nm):
+        parts.append(f"<p class='note'>pixel size {r.pixel_size_nm:.4g} nm ({esc(r.pixel_size_source)})</p>")
+    for code, text in a.warnings:
+        parts.append(f"<div class='warn'><b>{esc(code)}</b>: {esc(text)}</div>")
+    parts.append(_table(a.summary, a.psd_model, a.model_sigma_finite_nm))
+    figs = []
+    if r.preview is not None and r.traces is not None:
+        rows, cols = r.preview.shape
+        fig, ax = _figure(figsize=(4.2, max(2.0, min(8.0, 4.2 * rows / cols))))
+        plot_overlay(ax, r.preview.astype(float), r.traces)
+        figs.append((_png(fig), f"The first {rows} rows at their true aspect ratio, lines vertical"
+                     f"{' (the image was turned: its lines ran along the scan)' if r.traces.rotated else ''}; "
+                     "gold: fitted left edges, cyan: fitted right edges."))
+    if r.traces is not None:
+        fig, ax = _figure(figsize=(4, 4))
+        plot_traces(ax, r.traces)
+        figs.append((_png(fig), "Edge deviations from a straight line (gold left, cyan right edges)."))
+    fig, ax = _figure(figsize=(4, 4))
+    e = a.edge_psd
+    plot_psd(ax, e.frequency_per_nm, e.mean_psd_nm3, e.mean_floor_spectrum_nm3, a.psd_model, title="edge PSD")
+    figs.append((_png(fig), "Edge PSD: measured (orange), noise floor (grey), unbiased (blue), model (black)."))
+    if np.any(np.isfinite(a.edges.achieved_sd_nm)):
+        fig, ax = _figure(figsize=(4, 4))
+        plot_precision(ax, a.edges)
+        figs.append((_png(fig), "Precision per edge: achieved (purple), Cram&eacute;r&ndash;Rao bound (black), "
+                                "the fit's own uncertainty (grey)."))
+        parts.append(_precision_text(a))
+    parts.append("<div class='figs'>" + "".join(
+        f"<figure><img alt='figure of {esc(r.name)}' src='{u}'><figcaption>{cap}</figcaption></figure>"
+        for u, cap in figs) + "</div>")
+    return "".join(parts)
 
 
 def _groups_section(groups, settings) -> str:
