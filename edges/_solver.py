@@ -59,7 +59,7 @@ def _linear(s, Sw, Sy, Syy):
     with np.errstate(divide="ignore", invalid="ignore"):
         b = (Sw * s["Smy"] - s["Sm"] * Sy) / det
         a = (Sy - b * s["Sm"]) / Sw
-    rss = Syy - a * Sy - b * s["Smy"]
+        rss = Syy - a * Sy - b * s["Smy"]          # NaN where det = 0: replaced by inf below
     return a, b, np.where(det > 0, rss, np.inf), det
 
 

@@ -4,8 +4,9 @@ demo and simulate loop.  Everything here projects or drives the statistics of
 """
 from .comparing import compare
 from .runner import ImageResult, Measurement, measure
+from .sentences import comparison_sentences, noise_sentences, power_sentences
 from .settings import EXIT_OK, EXIT_SOME_FAILED, EXIT_USAGE, MeasureSettings, SettingsError
 from .simulate import simulate_images
 
-__all__ = ["measure", "compare", "Measurement", "ImageResult", "MeasureSettings", "SettingsError", "simulate_images",
+__all__ = ["measure", "compare", "comparison_sentences", "noise_sentences", "power_sentences", "Measurement", "ImageResult", "MeasureSettings", "SettingsError", "simulate_images",
            "EXIT_OK", "EXIT_USAGE", "EXIT_SOME_FAILED"]
