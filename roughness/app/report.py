@@ -483,7 +483,29 @@ def _image_section(k, r) -> str:
     parts.append("<div class='figs'>" + "".join(
         f"<figure><img alt='figure of {esc(r.name)}' src='{u}'><figcaption>{cap}</figcaption></figure>"
         for u, cap in figs) + "</div>")
+    parts.append(_edges_table(a.edges))
     return "".join(parts)
+
+
+def _edges_table(d) -> str:
+    """Per edge, folded away: position, roughness, precision, what was excluded and why."""
+    esc = html.escape
+    head = ["edge", "line", "side", "position (nm)", "3&sigma; unbiased (nm)", "noise share", "contrast-to-noise",
+            "row precision (nm)", "Cram&eacute;r&ndash;Rao (nm)", "shrinkage", "failed rows", "excluded / flags"]
+    rows = []
+    for k in range(np.asarray(d.line).size):
+        vb, vn = float(d.var_biased_nm2[k]), float(d.var_noise_nm2[k])
+        vu = vb - vn
+        note = "; ".join(x for x in (str(d.exclusion[k]), str(d.flags[k])) if x)
+        cells = [str(k), str(int(d.line[k])), esc(str(d.side[k])), _fmt(d.mean_position_nm[k], 1),
+                 _fmt(3 * math.sqrt(vu)) if vu > 0 else ("below the noise" if np.isfinite(vu) else "not measured"),
+                 _pct(vn / vb) if vb > 0 else "not determined", _fmt(d.contrast_to_noise[k], 1),
+                 _fmt(d.achieved_sd_nm[k], 3), _fmt(d.crlb_sd_nm[k], 3), _fmt(d.shrinkage[k], 3),
+                 str(int(d.invalid_rows[k])), esc(note.replace("_", " "))]
+        rows.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    return ("<details><summary>Every edge of this image</summary><table class='sortable'><thead><tr>"
+            + "".join(f"<th>{h}</th>" for h in head) + "</tr></thead><tbody>" + "".join(rows)
+            + "</tbody></table></details>")
 
 
 def _groups_section(groups, settings) -> str:
