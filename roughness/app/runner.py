@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import glob
 import os
+import sys
+import time
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -19,7 +21,7 @@ from edges import EdgeTraces, Micrograph, MicrographError, fit_edges, read_micro
 from ..analysis import GroupAnalysis, ImageAnalysis, analyse_group, analyse_image
 from ..differences import Comparison
 from .settings import MeasureSettings
-from .store import StoreError, load_result, result_file_name, save_result
+from .store import StoreError, content_key, load_result, result_file_name, save_result
 from .tables import write_outputs
 
 __all__ = ["ImageResult", "Measurement", "measure", "expand_inputs", "IMAGE_SUFFIXES"]
@@ -48,6 +50,8 @@ class ImageResult:
     pixel_size_source : str
         ``"file"`` (TIFF resolution tags), ``"given"`` (settings or API), or ``"given, overriding
         the file's X nm"``.
+    content_key : str
+        SHA-1 of the image's content (the result store's key, with name, group and settings).
     """
 
     name: str
@@ -57,6 +61,7 @@ class ImageResult:
     preview: np.ndarray | None = None
     pixel_size_nm: float = float("nan")
     pixel_size_source: str = ""
+    content_key: str = ""
 
 
 @dataclass(frozen=True)
@@ -154,7 +159,7 @@ def detect_edges(micrograph: Micrograph, settings: MeasureSettings) -> EdgeTrace
     return slope_edges(micrograph, **common)
 
 
-def _measure_one(item, k, settings: MeasureSettings, group: str = "") -> ImageResult:
+def _measure_one(item, k, settings: MeasureSettings, group: str = "", key: str = "") -> ImageResult:
     name = _name(item, k)
     m = _load(item, name, settings)
     traces = detect_edges(m, settings)
@@ -168,17 +173,83 @@ def _measure_one(item, k, settings: MeasureSettings, group: str = "") -> ImageRe
                                     f"calibration ({file_size:.4g} nm): every length scales with it; check which "
                                     "is right"),))
     common = dict(name=name, group=group, analysis=analysis, pixel_size_nm=float(m.pixel_size_nm),
-                  pixel_size_source=source)
+                  pixel_size_source=source, content_key=key)
     if k >= settings.report_image_sections:
         return ImageResult(**common)
     pixels = m.pixels.T if traces.rotated else m.pixels
     return ImageResult(**common, traces=traces, preview=pixels[: min(pixels.shape[0], _PREVIEW_ROWS)].astype(np.float16))
 
 
-def _safe_measure(args):
-    item, k, settings, group = args
+#: Thread counts of the BLAS and OpenMP libraries, set to 1 for worker processes: N workers each
+#: running N BLAS threads oversubscribe the cores.
+_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS",
+                "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS")
+_WORKER_DIED = ("the worker process measuring this image died (killed, or out of memory); "
+                "the other images were measured")
+
+
+def _watch_parent(parent_pid):
+    """Worker initializer: end this process when the batch's main process is gone, so that a
+    killed batch leaves no worker blocked on its queue."""
+    import threading
+
+    def watch():
+        while True:
+            time.sleep(1.0)
+            if os.getppid() != parent_pid:
+                os._exit(1)
+
+    threading.Thread(target=watch, daemon=True).start()
+
+
+def _pool(n):
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    # spawned (not forked) so that each worker starts its BLAS with the single thread set below
+    return ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=_watch_parent, initargs=(os.getpid(),))
+
+
+def _run_pool(todo, workers, done):
+    """Measure ``todo`` on ``workers`` processes, calling ``done`` as each finishes.  A worker
+    that dies breaks the pool: the images it left unfinished are retried one per fresh process,
+    and one that kills its process again is recorded as that image's failure."""
+    from concurrent.futures import as_completed
+    from concurrent.futures.process import BrokenProcessPool
+
+    saved = {v: os.environ.get(v) for v in _THREAD_VARS}
+    os.environ.update({v: "1" for v in _THREAD_VARS})
     try:
-        return _measure_one(item, k, settings, group), None
+        suspects = []
+        with _pool(workers) as pool:
+            futures = {pool.submit(_safe_measure, job): job for job in todo}
+            for fut in as_completed(futures):
+                try:
+                    res, fail = fut.result()
+                except BrokenProcessPool:
+                    suspects.append(futures[fut])
+                    continue
+                done(futures[fut], res, fail)
+        for job in sorted(suspects, key=lambda j: j[1]):
+            try:
+                with _pool(1) as pool:
+                    res, fail = pool.submit(_safe_measure, job).result()
+            except BrokenProcessPool:
+                res, fail = None, (_name(job[0], job[1]), _WORKER_DIED)
+            done(job, res, fail)
+    finally:
+        for v, value in saved.items():
+            if value is None:
+                os.environ.pop(v, None)
+            else:
+                os.environ[v] = value
+
+
+def _safe_measure(args):
+    item, k, settings, group, key = args
+    try:
+        return _measure_one(item, k, settings, group, key), None
     except Exception as exc:       # one bad image never stops a batch: record why
         reason = str(exc) if isinstance(exc, (ValueError, OSError)) else f"{type(exc).__name__}: {exc}"
         return None, (_name(item, k), reason)
@@ -186,8 +257,9 @@ def _safe_measure(args):
 
 class _Cache:
     """One file per measured image, written as soon as it is done, so that an interrupted batch
-    loses nothing and ``resume`` measures only what is missing.  Keys hash the image name, its
-    group and every setting, so a changed recipe is measured afresh.  Files are ``.npz`` read
+    loses nothing and ``resume`` measures only what is missing.  Keys hash the image's content,
+    name, group, every setting and the quietedge version, so a replaced image or a changed recipe
+    is measured afresh.  Files are ``.npz`` read
     without pickle (:mod:`roughness.app.store`): nothing in the folder is ever executed, and a
     file that is not a stored result (or a leftover ``.pkl`` of an older version) is ignored."""
 
@@ -197,8 +269,8 @@ class _Cache:
         self.resume = resume
 
     def _path(self, job):
-        item, k, settings, group = job
-        return self.folder / result_file_name(_name(item, k), group, settings)
+        item, k, settings, group, key = job
+        return self.folder / result_file_name(_name(item, k), group, settings, key)
 
     def load(self, job):
         path = self._path(job)
@@ -230,7 +302,9 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
         Shorthand for ``replace(settings, pixel_size_nm=...)``: overrides the TIFF tags;
         required for PNG files and arrays.
     workers : int
-        Processes; 1 measures in this process.
+        Processes (at most the cores available); 1 measures in this process.  Workers are
+        spawned, so a script calling this with ``workers > 1`` needs the usual
+        ``if __name__ == "__main__":`` guard.
     progress : bool
         Show a progress bar (tqdm) on stderr.
     cache_dir : path, optional
@@ -282,7 +356,7 @@ def _collect(groups: dict, settings: MeasureSettings, *, workers=1, progress=Fal
         if isinstance(items, (str, os.PathLike, np.ndarray, Micrograph)):
             items = [items]
         for item in expand_inputs(items):
-            jobs.append((item, offset + len(jobs), settings, str(gname)))
+            jobs.append((item, offset + len(jobs), settings, str(gname), content_key(item)))
     if not jobs:
         raise ValueError("no images given")
     results, failures = [], []
@@ -310,19 +384,22 @@ def _collect(groups: dict, settings: MeasureSettings, *, workers=1, progress=Fal
         if bar:
             bar.update()
 
+    t0 = time.monotonic()
     try:
         if workers > 1 and len(todo) > 1:
-            from concurrent.futures import ProcessPoolExecutor
-
-            with ProcessPoolExecutor(max_workers=workers) as pool:
-                for job, (res, fail) in zip(todo, pool.map(_safe_measure, todo)):
-                    done(job, res, fail)
+            _run_pool(todo, workers, done)
         else:
             for job in todo:
                 done(job, *_safe_measure(job))
     finally:
         if bar:
             bar.close()
+    if progress and todo:
+        seconds = time.monotonic() - t0
+        n_ok = len(todo) - len(failures)
+        print(f"measured {n_ok} of {len(todo)} image(s) in {seconds:.1f} s ({len(todo) / max(seconds, 1e-9):.2f} images/s)"
+              + (f", {len(jobs) - len(todo)} reused from the store" if len(jobs) > len(todo) else "")
+              + (f"; {len(failures)} failed" if failures else ""), file=sys.stderr)
     order = {(_name(j[0], j[1]), j[3]): i for i, j in enumerate(jobs)}
     results.sort(key=lambda r: order.get((r.name, r.group), 0))
     return results, failures

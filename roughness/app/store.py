@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["ALLOWED", "StoreError", "save_result", "load_result", "result_file_name"]
+__all__ = ["ALLOWED", "StoreError", "save_result", "load_result", "result_file_name", "content_key"]
 
 #: The only types rebuilt from a file.
 ALLOWED = {
@@ -80,10 +80,41 @@ def _decode(node, arrays):
     raise StoreError("unknown entry in the stored structure")
 
 
-def result_file_name(name: str, group: str, settings) -> str:
-    """File name of an image's stored result: a hash of its name, its group and every setting
-    (a dataclass)."""
-    text = json.dumps({"image": name, "group": group, "settings": dataclasses.asdict(settings)}, sort_keys=True)
+def content_key(item) -> str:
+    """SHA-1 of an image's content: a file's bytes, or an array's pixels (with the pixel size of
+    a Micrograph).  An image replaced under the same name gets a new key.  ``""`` for a path
+    that cannot be read (it is reported when measured)."""
+    h = hashlib.sha1()
+    pixels = getattr(item, "pixels", item)
+    if isinstance(pixels, np.ndarray):
+        a = np.ascontiguousarray(pixels)
+        h.update(f"{a.dtype.str}{a.shape}{getattr(item, 'pixel_size_nm', '')}".encode())
+        h.update(a.tobytes())
+        return h.hexdigest()
+    try:
+        with open(item, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    except (OSError, TypeError):
+        return ""
+    return h.hexdigest()
+
+
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("quietedge")
+    except PackageNotFoundError:
+        return "unknown"
+
+
+def result_file_name(name: str, group: str, settings, content: str = "") -> str:
+    """File name of an image's stored result: a hash of its content, name, group, every setting
+    (a dataclass) and the quietedge version, so that a replaced image, a changed recipe or a
+    new version is measured afresh."""
+    text = json.dumps({"image": name, "group": group, "content": content, "version": _version(),
+                       "settings": dataclasses.asdict(settings)}, sort_keys=True)
     return f"{hashlib.sha1(text.encode()).hexdigest()[:20]}.npz"
 
 

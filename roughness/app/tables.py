@@ -252,7 +252,7 @@ def _store_results(meas, folder: Path) -> list:
     folder.mkdir(parents=True, exist_ok=True)
     listed = []
     for r in meas.images:
-        name = result_file_name(r.name, r.group, meas.settings)
+        name = result_file_name(r.name, r.group, meas.settings, r.content_key)
         if not (folder / name).exists():
             save_result(folder / name, r)
         listed.append([r.name, r.group, f"{RESULTS_FOLDER}/{name}"])

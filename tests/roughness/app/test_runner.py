@@ -1,6 +1,7 @@
 """The measure command end to end: numbers against truth, the output contract, the report."""
 import json
 import math
+from dataclasses import replace
 import os
 import re
 from html.parser import HTMLParser
@@ -9,6 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from edges import Micrograph
 from edges.io import write_micrograph, write_truth
 from edges.render import SEMSettings
 from roughness.app.cli import main
@@ -273,3 +275,43 @@ def test_pixel_size_and_its_source_are_reported_and_an_override_warned(tmp_path,
     assert "pixel_size_override" in forced.analysis.warning_codes
     # every length doubles with the pixel size: the CD is the file's twice
     assert forced.analysis.summary.cd_nm == pytest.approx(2 * own.analysis.summary.cd_nm, rel=1e-9)
+
+
+def test_two_workers_give_the_tables_of_one_and_a_dead_worker_is_one_failure(tmp_path, rng):
+    from tests._killer import WorkerKiller
+
+    pixels = [simulate_line_space(n_rows=200, n_cols=330, pitch_nm=64, cd_nm=32, sigma_nm=1.2,
+                                  correlation_length_nm=8.0, roughness_exponent=0.6,
+                                  settings=SEMSettings(dose_per_pixel=300, blur_nm=3.0), rng=rng)[0] for _ in range(3)]
+    images = [Micrograph(pixels=p, pixel_size_nm=1.0, source=f"img{k}") for k, p in enumerate(pixels)]
+    settings = MeasureSettings(n_resamples=100, model_resamples=0)
+    one = measure(images, settings=settings)
+    killer = WorkerKiller(pixels=pixels[0], pixel_size_nm=1.0, source="killer")
+    two = measure(images[:2] + [killer] + images[2:], settings=settings, workers=2)
+    # the image whose worker died is that image's failure, with the reason; the rest are measured
+    assert [name for name, _ in two.failures] == ["killer"] and "worker process" in two.failures[0][1]
+    assert [r.name for r in two.images] == ["img0", "img1", "img2"]
+    # the same tables, up to the last bits: the workers run single-threaded BLAS, whose sums
+    # come in another order (3e-17 relative in the variances); the PSD model's optimizer, which
+    # stops at a tolerance, carries that to ~1e-6 in the correlation length
+    from roughness.app.tables import groups_table, summary_table
+
+    two_ok = replace(two, failures=())
+    pd.testing.assert_frame_equal(summary_table(one), summary_table(two_ok), rtol=1e-5)
+    pd.testing.assert_frame_equal(groups_table(one), groups_table(two_ok), rtol=1e-5)
+
+
+def test_a_replaced_image_is_measured_again_on_resume(tmp_path, rng):
+    _write_images(tmp_path / "in", rng, doses=[300], n_rows=200, n_cols=330)
+    out = tmp_path / "out"
+    args = ["measure", str(tmp_path / "in"), "--out", str(out), "--quiet", "--no-report", "--resamples", "100"]
+    assert main(args) == 0
+    first = pd.read_csv(out / "summary.csv")
+    # the same name, other content (rougher edges): the store's key is the content, not the name
+    px, _ = simulate_line_space(n_rows=200, n_cols=330, pitch_nm=64, cd_nm=32, sigma_nm=2.4,
+                                correlation_length_nm=8.0, roughness_exponent=0.6,
+                                settings=SEMSettings(dose_per_pixel=300, blur_nm=3.0), rng=rng)
+    write_micrograph(tmp_path / "in" / "img_0.tif", px, pixel_size_nm=1.0)
+    assert main(args + ["--resume"]) == 0
+    again = pd.read_csv(out / "summary.csv")
+    assert again["edge_sigma_biased_nm"].iloc[0] > 1.5 * first["edge_sigma_biased_nm"].iloc[0]
