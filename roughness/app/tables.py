@@ -7,7 +7,10 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import platform
+import shutil
+import tempfile
 from dataclasses import asdict
 from datetime import datetime, timezone
 from pathlib import Path
@@ -259,37 +262,57 @@ def _store_results(meas, folder: Path) -> list:
     return listed
 
 
+#: Every file a run may write at the top of its folder; settings.json (the completion marker) last.
+OUTPUT_FILES = ("summary.csv", "edges.csv", "psd.csv", "groups.csv", "compare.csv", "failures.csv", "report.html",
+                "settings.json")
+
+
 def write_outputs(meas, out: Path, *, report: bool = True) -> Path:
-    """Write summary, edges, psd, groups (and failures) CSV, settings.json and the report."""
+    """Write summary, edges, psd, groups, compare and failures CSV, the report and settings.json,
+    as a set.
+
+    Everything is written into a temporary folder inside ``out`` first; only then is the earlier
+    run's settings.json removed, the new files moved in (each move atomic), stale files of the
+    earlier run removed, and settings.json moved in last.  settings.json is the completion
+    marker: where it exists the tables and the report in the folder belong to one run (``compare``
+    and readers rely on it); an interrupted write leaves the earlier complete set, or a folder
+    without settings.json, never a mixture that claims to be complete.
+    """
     out.mkdir(parents=True, exist_ok=True)
-    summary_table(meas).to_csv(out / "summary.csv", index=False)
-    edges_table(meas).to_csv(out / "edges.csv", index=False)
-    psd_table(meas).to_csv(out / "psd.csv", index=False)
-    if meas.images:
-        groups_table(meas).to_csv(out / "groups.csv", index=False)
-    cmp_path = out / "compare.csv"
-    if meas.comparison is not None:
-        compare_table(meas).to_csv(cmp_path, index=False)
-    elif cmp_path.exists():
-        cmp_path.unlink()       # a stale comparison from an earlier run would mislead
-    fail = out / "failures.csv"
-    if meas.failures:
-        failures_table(meas).to_csv(fail, index=False)
-    elif fail.exists():
-        fail.unlink()           # a stale list from an earlier run would mislead
     stored = _store_results(meas, out / RESULTS_FOLDER)
-    settings = {"settings": asdict(meas.settings), "versions": _versions(),
-                "images": [r.name for r in meas.images], "failed": [f[0] for f in meas.failures],
-                "results": stored,
-                "written": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-                "conventions": {"psd": "one-sided, nm^3 against cycles/nm; two-sided PSD(0) in *_two_sided_*",
-                                "sigma": "1-sigma in nm; 3sigma columns = 3 x sigma",
-                                "noise_fraction": "noise variance / biased variance (a share of variance)",
-                                "edge_position": "half-level point of the edge's mean profile",
-                                "psd_grid": "images of different lengths or pixel sizes are interpolated onto "
-                                            "the coarsest resolution up to the lowest Nyquist frequency, "
-                                            "weighted by edge length"}}
-    (out / "settings.json").write_text(json.dumps(settings, indent=1, default=float))
-    if report:
-        write_report(meas, out / "report.html")
+    tmp = Path(tempfile.mkdtemp(prefix=".writing-", dir=out))
+    try:
+        summary_table(meas).to_csv(tmp / "summary.csv", index=False)
+        edges_table(meas).to_csv(tmp / "edges.csv", index=False)
+        psd_table(meas).to_csv(tmp / "psd.csv", index=False)
+        if meas.images:
+            groups_table(meas).to_csv(tmp / "groups.csv", index=False)
+        if meas.comparison is not None:
+            compare_table(meas).to_csv(tmp / "compare.csv", index=False)
+        if meas.failures:
+            failures_table(meas).to_csv(tmp / "failures.csv", index=False)
+        settings = {"settings": asdict(meas.settings), "versions": _versions(),
+                    "images": [r.name for r in meas.images], "failed": [f[0] for f in meas.failures],
+                    "results": stored,
+                    "written": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                    "conventions": {"psd": "one-sided, nm^3 against cycles/nm; two-sided PSD(0) in *_two_sided_*",
+                                    "sigma": "1-sigma in nm; 3sigma columns = 3 x sigma",
+                                    "noise_fraction": "noise variance / biased variance (a share of variance)",
+                                    "edge_position": "half-level point of the edge's mean profile",
+                                    "psd_grid": "images of different lengths or pixel sizes are interpolated onto "
+                                                "the coarsest resolution up to the lowest Nyquist frequency, "
+                                                "weighted by edge length"}}
+        if report:
+            write_report(meas, tmp / "report.html")
+        settings["files"] = sorted(p.name for p in tmp.iterdir()) + ["settings.json"]
+        (tmp / "settings.json").write_text(json.dumps(settings, indent=1, default=float))
+        (out / "settings.json").unlink(missing_ok=True)       # from here on the folder is not complete
+        for name in OUTPUT_FILES[:-1]:
+            if (tmp / name).exists():
+                os.replace(tmp / name, out / name)
+            else:
+                (out / name).unlink(missing_ok=True)           # a stale file of an earlier run would mislead
+        os.replace(tmp / "settings.json", out / "settings.json")
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
     return out

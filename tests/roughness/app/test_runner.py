@@ -315,3 +315,30 @@ def test_a_replaced_image_is_measured_again_on_resume(tmp_path, rng):
     assert main(args + ["--resume"]) == 0
     again = pd.read_csv(out / "summary.csv")
     assert again["edge_sigma_biased_nm"].iloc[0] > 1.5 * first["edge_sigma_biased_nm"].iloc[0]
+
+
+def test_outputs_are_written_as_a_set(tmp_path, rng, monkeypatch):
+    _write_images(tmp_path / "in", rng, doses=[300, 300], n_rows=200, n_cols=330)
+    out = tmp_path / "out"
+    base = ["measure", "--out", str(out), "--quiet", "--resamples", "100"]
+    assert main(base + [str(tmp_path / "in")]) == 0
+    first = pd.read_csv(out / "summary.csv")
+    report = (out / "report.html").read_text()
+    # a second run of one image dies while writing its report: the folder keeps the first run's
+    # complete set (summary, report and settings.json agree), no mixture
+    import roughness.app.tables as tables
+
+    def crash(*a, **k):
+        raise KeyboardInterrupt("killed while writing the report")
+
+    monkeypatch.setattr(tables, "write_report", crash)
+    with pytest.raises(KeyboardInterrupt):
+        main(base + [str(tmp_path / "in" / "img_0.tif")])
+    pd.testing.assert_frame_equal(pd.read_csv(out / "summary.csv"), first)
+    assert (out / "report.html").read_text() == report
+    assert len(json.loads((out / "settings.json").read_text())["images"]) == 2
+    assert not [p for p in out.iterdir() if p.name.startswith(".writing")]
+    # a complete second run without a report removes the first run's report (it would mislead)
+    monkeypatch.undo()
+    assert main(base + ["--no-report", str(tmp_path / "in" / "img_0.tif")]) == 0
+    assert len(pd.read_csv(out / "summary.csv")) == 1 and not (out / "report.html").exists()
