@@ -131,7 +131,12 @@ def _add_measure_options(p):
                    help="noise share of the variance above which a result is flagged and the frames needed are "
                         f"given (default {d.noise_share_target}: {100 * (1 / (1 - d.noise_share_target) ** 0.5 - 1):.1f}%% "
                         "inflation of 3-sigma)")
-    p.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    p.add_argument("--workers", type=int, default=1,
+                   help="worker processes, at most the cores (default 1); with --dask local, the cluster's")
+    p.add_argument("--dask", default=None, metavar="ADDRESS",
+                   help="run the per-image work on a Dask cluster: 'local' starts one here, or give a scheduler "
+                        "address such as tcp://scheduler:8786 (needs pip install 'quietedge[dask]'; image paths "
+                        "must be readable by the workers)")
     p.add_argument("--resume", action="store_true",
                    help="reuse the per-image results kept in OUT/per_image from an earlier or interrupted "
                         "run with the same settings; only the missing images are measured")
@@ -207,7 +212,7 @@ def _run_measure(args) -> int:
         raise SettingsError("no images found in " + ", ".join(repr(str(g)) for g in given) +
                             " (a folder must hold .tif, .tiff or .png files; quote patterns so that "
                             "quietedge expands them)")
-    meas = measure(args.images, settings=settings, workers=args.workers,
+    meas = measure(args.images, settings=settings, workers=args.workers, dask=args.dask,
                    progress=not args.quiet, cache_dir=args.out / "per_image", resume=args.resume)
     meas.write(args.out, report=not args.no_report)
     if not args.quiet:
@@ -247,7 +252,8 @@ def _run_compare(args) -> int:
         raise SettingsError(f"--workers {args.workers}: must be >= 1")
     groups = _groups(args.group)
     meas = compare(groups, settings=settings, out=args.out, effect_3sigma_nm=args.effect_3sigma_nm,
-                   workers=args.workers, progress=not args.quiet, resume=args.resume, report=not args.no_report)
+                   workers=args.workers, progress=not args.quiet, resume=args.resume, report=not args.no_report,
+                   dask=args.dask)
     c = meas.comparison
     if not args.quiet and meas.groups:
         df = groups_table(meas)

@@ -54,7 +54,7 @@ def _load_output(folder: Path, group: str):
 
 def compare(groups: dict, *, settings: MeasureSettings | None = None, pixel_size_nm: float | None = None,
             out=None, effect_3sigma_nm: float | None = None, workers: int = 1, progress: bool = False,
-            resume: bool = False, report: bool = True) -> Measurement:
+            resume: bool = False, report: bool = True, dask: str | None = None) -> Measurement:
     """Measure (or reuse) groups of images and compare their roughness.
 
     Parameters
@@ -74,7 +74,7 @@ def compare(groups: dict, *, settings: MeasureSettings | None = None, pixel_size
     effect_3sigma_nm : float, optional
         Difference of unbiased 3-sigma to plan the sample size for (default 10% of the mean
         unbiased 3-sigma LER).
-    workers, progress, resume
+    workers, progress, resume, dask
         As for :func:`roughness.measure`.
     report : bool
         Write report.html with ``out``.
@@ -114,7 +114,7 @@ def compare(groups: dict, *, settings: MeasureSettings | None = None, pixel_size
     if to_measure:
         cache = Path(out) / "per_image" if out is not None else None
         results, failures = _collect(to_measure, settings, workers=workers, progress=progress, cache_dir=cache,
-                                     resume=resume)
+                                     resume=resume, dask=dask)
     for name, folders in reused.items():
         for folder in folders:
             got, bad = _load_output(folder, name)

@@ -246,6 +246,50 @@ def _run_pool(todo, workers, done):
                 os.environ[v] = value
 
 
+def _run_dask(todo, address, workers, done):
+    """Measure ``todo`` on a Dask distributed cluster (``"local"``: one started here on
+    loopback with ``workers`` single-threaded processes, closed after), calling ``done`` as each
+    image finishes.  The work per image is :func:`_safe_measure`, the same as in this process.
+    File paths must be readable by the workers (a shared file system)."""
+    try:
+        from dask.distributed import Client, LocalCluster, as_completed
+    except ImportError:
+        raise ValueError("dask: the optional extra is not installed (pip install 'quietedge[dask]')") from None
+    saved = {v: os.environ.get(v) for v in _THREAD_VARS}
+    os.environ.update({v: "1" for v in _THREAD_VARS})
+    cluster = None
+    try:
+        if address == "local":
+            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                   dashboard_address=None)
+            client = Client(cluster)
+        else:
+            try:
+                client = Client(address, timeout=30)
+            except OSError as exc:
+                raise ValueError(f"dask: cannot reach the scheduler at {address!r} ({exc})") from None
+        try:
+            futures = client.map(_safe_measure, todo, pure=False)
+            jobs = {f.key: job for f, job in zip(futures, todo)}
+            for fut in as_completed(futures):
+                job = jobs[fut.key]
+                try:
+                    res, fail = fut.result()
+                except Exception as exc:           # a worker lost or killed: that image's failure
+                    res, fail = None, (_name(job[0], job[1]), f"the Dask worker measuring this image failed ({exc})")
+                done(job, res, fail)
+        finally:
+            client.close()
+    finally:
+        if cluster is not None:
+            cluster.close()
+        for v, value in saved.items():
+            if value is None:
+                os.environ.pop(v, None)
+            else:
+                os.environ[v] = value
+
+
 def _safe_measure(args):
     item, k, settings, group, key = args
     try:
@@ -287,7 +331,7 @@ class _Cache:
 
 def measure(images=None, *, groups: dict | None = None, settings: MeasureSettings | None = None,
             pixel_size_nm: float | None = None, workers: int = 1, progress: bool = False,
-            cache_dir=None, resume: bool = False) -> Measurement:
+            cache_dir=None, resume: bool = False, dask: str | None = None) -> Measurement:
     """Measure roughness on SEM images.
 
     Parameters
@@ -311,6 +355,10 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
         Keep each image's result there as soon as it is measured.
     resume : bool
         With ``cache_dir``: reuse the images already measured with the same settings.
+    dask : str, optional
+        ``"local"`` (a Dask cluster of ``workers`` processes started here) or a scheduler
+        address such as ``"tcp://scheduler:8786"``: the same per-image work runs there (optional
+        extra ``quietedge[dask]``); results are stored and reduced exactly as without it.
 
     Returns
     -------
@@ -329,7 +377,7 @@ def measure(images=None, *, groups: dict | None = None, settings: MeasureSetting
     """
     settings = _check(settings, pixel_size_nm, workers)
     results, failures = _collect(groups if groups else {"": images}, settings, workers=workers, progress=progress,
-                                 cache_dir=cache_dir, resume=resume)
+                                 cache_dir=cache_dir, resume=resume, dask=dask)
     names = list(dict.fromkeys(str(g) for g in groups)) if groups else []
     return reduce_results(results, failures, settings, names)
 
@@ -346,7 +394,7 @@ def _check(settings, pixel_size_nm, workers) -> MeasureSettings:
 
 
 def _collect(groups: dict, settings: MeasureSettings, *, workers=1, progress=False, cache_dir=None,
-             resume=False, offset: int = 0):
+             resume=False, offset: int = 0, dask: str | None = None):
     """Measure ``{group: images}`` (group ``""`` without groups); (results in order, failures)."""
     workers = min(workers, os.cpu_count() or 1)          # never more processes than cores
     jobs = []
@@ -386,7 +434,9 @@ def _collect(groups: dict, settings: MeasureSettings, *, workers=1, progress=Fal
 
     t0 = time.monotonic()
     try:
-        if workers > 1 and len(todo) > 1:
+        if dask and todo:
+            _run_dask(todo, dask, max(workers, 1), done)
+        elif workers > 1 and len(todo) > 1:
             _run_pool(todo, workers, done)
         else:
             for job in todo:

@@ -342,3 +342,16 @@ def test_outputs_are_written_as_a_set(tmp_path, rng, monkeypatch):
     monkeypatch.undo()
     assert main(base + ["--no-report", str(tmp_path / "in" / "img_0.tif")]) == 0
     assert len(pd.read_csv(out / "summary.csv")) == 1 and not (out / "report.html").exists()
+
+
+def test_a_local_dask_cluster_gives_the_tables_of_one_process(tmp_path, rng):
+    pytest.importorskip("dask.distributed", reason="the optional extra quietedge[dask] is not installed")
+    truths = _write_images(tmp_path / "in", rng, doses=[300, 300, 300], n_rows=200, n_cols=330)
+    settings = MeasureSettings(n_resamples=100, model_resamples=0)
+    one = measure(sorted(truths), settings=settings)
+    cluster = measure(sorted(truths), settings=settings, dask="local", workers=2)
+    from roughness.app.tables import groups_table, summary_table
+
+    # the same tables up to the last bits (single-threaded BLAS in the workers, see above)
+    pd.testing.assert_frame_equal(summary_table(one), summary_table(cluster), rtol=1e-5)
+    pd.testing.assert_frame_equal(groups_table(one), groups_table(cluster), rtol=1e-5)
