@@ -109,6 +109,10 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
             import imageio.v3 as iio
 
             data = iio.imread(path)
+        elif suffix in (".jpg", ".jpeg", ".jpe", ".jfif"):
+            raise MicrographError(f"{path}: JPEG is refused: its lossy compression smooths and correlates the pixel "
+                                  "noise, so the noise floor (and with it every unbiased value) cannot be trusted; "
+                                  "export the micrograph as TIFF or PNG")
         else:
             raise MicrographError(f"{path}: unsupported file type {suffix!r} (use .tif, .tiff or .png)")
     except MicrographError:
@@ -119,6 +123,10 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
     if data.size == 0:
         raise MicrographError(f"{path}: image has no pixels")
     data = _to_grey(data, path)
+    if data.ndim == 3 and suffix in _TIFF_SUFFIXES:
+        raise MicrographError(f"{path}: a stack of {data.shape[0]} frames; quietedge measures one frame per file: save "
+                              "the frames as separate files (each is then measured), or average them in the SEM "
+                              "software and give the count with --frames")
     if data.ndim != 2:
         raise MicrographError(f"{path}: expected a 2-D grey-level image, got shape {data.shape}")
     saturation = float(np.iinfo(data.dtype).max) if np.issubdtype(data.dtype, np.integer) else None

@@ -26,7 +26,8 @@ from .tables import write_outputs
 
 __all__ = ["ImageResult", "Measurement", "measure", "expand_inputs", "IMAGE_SUFFIXES"]
 
-IMAGE_SUFFIXES = (".tif", ".tiff", ".png")
+#: Listed from folders; JPEG files are listed so that each is reported as refused, with the reason.
+IMAGE_SUFFIXES = (".tif", ".tiff", ".png", ".jpg", ".jpeg")
 _PREVIEW_ROWS = 384
 
 

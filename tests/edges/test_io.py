@@ -50,7 +50,7 @@ def test_bad_files_name_file_and_reason(tmp_path):
     with pytest.raises(MicrographError, match=r"junk\.tif: cannot be read"):
         read_micrograph(tmp_path / "junk.tif", pixel_size_nm=1)
     tifffile.imwrite(tmp_path / "stack.tif", np.zeros((3, 8, 9), np.uint16), photometric="minisblack")
-    with pytest.raises(MicrographError, match=r"stack\.tif: expected a 2-D"):
+    with pytest.raises(MicrographError, match=r"stack\.tif: a stack of 3 frames"):
         read_micrograph(tmp_path / "stack.tif", pixel_size_nm=1)
     bad = np.ones((8, 8), np.float32)
     bad[2, 3] = np.nan
@@ -85,3 +85,24 @@ def test_a_header_declaring_a_huge_image_is_refused_before_decoding(tmp_path, mo
     monkeypatch.setattr(tifffile.TiffFile, "asarray", never)
     with pytest.raises(MicrographError, match=r"huge\.tif: the file declares 8192 x 16384 pixels"):
         read_micrograph(path, pixel_size_nm=1.0)
+
+
+def test_jpeg_and_frame_stacks_are_refused_with_the_reason(tmp_path, rng):
+    import imageio.v3 as iio
+    import tifffile
+
+    jpg = tmp_path / "lines.jpg"
+    iio.imwrite(jpg, rng.integers(0, 255, (64, 64)).astype(np.uint8))
+    with pytest.raises(MicrographError, match=r"lines\.jpg: JPEG is refused: its lossy compression"):
+        read_micrograph(jpg, pixel_size_nm=1.0)
+    stack = tmp_path / "stack.tif"
+    tifffile.imwrite(stack, rng.integers(0, 4000, (5, 64, 80)).astype(np.uint16))
+    with pytest.raises(MicrographError, match=r"stack\.tif: a stack of 5 frames"):
+        read_micrograph(stack, pixel_size_nm=1.0)
+
+
+def test_sixteen_bit_png_keeps_its_levels(tmp_path, rng):
+    data = rng.integers(0, 65535, (32, 48)).astype(np.uint16)
+    path = write_micrograph(tmp_path / "a.png", data, pixel_size_nm=1.0, bit_depth=16)
+    m = read_micrograph(path, pixel_size_nm=0.5)
+    assert np.array_equal(m.pixels, data) and m.saturation_level == 65535
