@@ -355,3 +355,30 @@ def test_a_local_dask_cluster_gives_the_tables_of_one_process(tmp_path, rng):
     # the same tables up to the last bits (single-threaded BLAS in the workers, see above)
     pd.testing.assert_frame_equal(summary_table(one), summary_table(cluster), rtol=1e-5)
     pd.testing.assert_frame_equal(groups_table(one), groups_table(cluster), rtol=1e-5)
+
+
+@pytest.mark.slow
+def test_a_batch_killed_midway_and_resumed_equals_an_uninterrupted_run(tmp_path, rng):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    _write_images(tmp_path / "in", rng, doses=[300] * 6, n_rows=512, n_cols=512)
+    args = ["measure", str(tmp_path / "in"), "--quiet", "--no-report", "--resamples", "100"]
+    assert main(args + ["--out", str(tmp_path / "whole")]) == 0
+    out = tmp_path / "killed"
+    proc = subprocess.Popen([sys.executable, "-c", "import sys; from roughness.app.cli import main; "
+                             f"sys.exit(main({args + ['--out', str(out)]!r}))"])
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and len(list((out / "per_image").glob("*.npz"))) < 2:
+        time.sleep(0.02)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    done_before = len(list((out / "per_image").glob("*.npz")))
+    assert 2 <= done_before < 6 and not (out / "summary.csv").exists()
+    # records are written then renamed, so only complete ones count: the resume measures the rest
+    assert main(args + ["--out", str(out), "--resume"]) == 0
+    whole, resumed = pd.read_csv(tmp_path / "whole" / "summary.csv"), pd.read_csv(out / "summary.csv")
+    assert len(resumed) == 6 and resumed["image"].is_unique
+    pd.testing.assert_frame_equal(resumed, whole)
