@@ -125,6 +125,9 @@ def _add_measure_options(p):
                    help=f"bootstrap resamples for confidence intervals (default {d.n_resamples})")
     p.add_argument("--confidence", type=float, default=None,
                    help=f"confidence level of the intervals (default {d.confidence})")
+    p.add_argument("--crop-px", type=int, nargs=4, dest="crop_px", default=None,
+                   metavar=("TOP", "BOTTOM", "LEFT", "RIGHT"),
+                   help="pixels cut from each side of every image before measuring (a region of interest)")
     p.add_argument("--frames", type=int, default=None,
                    help=f"frames averaged into each image as acquired, for the frames-needed advice (default {d.frames})")
     p.add_argument("--noise-share-target", type=float, dest="noise_share_target", default=None, metavar="FRACTION",

@@ -137,6 +137,18 @@ def _name(item, k):
 
 
 def _load(item, name, settings):
+    m = _read(item, name, settings)
+    if settings.crop_px is None or not any(settings.crop_px):
+        return m
+    top, bottom, left, right = settings.crop_px
+    rows, cols = m.pixels.shape
+    if rows - top - bottom < 16 or cols - left - right < 16:
+        raise MicrographError(f"{name}: cropping {settings.crop_px} pixels (top, bottom, left, right) from a "
+                              f"{cols} x {rows} image leaves less than 16 x 16 pixels")
+    return replace(m, pixels=m.pixels[top:rows - bottom, left:cols - right])
+
+
+def _read(item, name, settings):
     if isinstance(item, Micrograph):
         m = item if settings.pixel_size_nm is None else replace(item, pixel_size_nm=settings.pixel_size_nm)
         return replace(m, source=name)

@@ -62,6 +62,9 @@ class MeasureSettings:
         Images that get their own section with figures in the report (the first ones).
     frames : int
         Frames averaged into each image as acquired (see :class:`roughness.analysis.AnalysisOptions`).
+    crop_px : (top, bottom, left, right) or None
+        Pixels cut from each side of every image before anything else (a region of interest:
+        a label, a damaged corner, a second pattern); None keeps the whole image.
     """
 
     pixel_size_nm: float | None = None
@@ -84,6 +87,7 @@ class MeasureSettings:
     precision_target: float = 0.05
     report_image_sections: int = 12
     frames: int = 1
+    crop_px: tuple | None = None
 
     def __post_init__(self):
         def choice(name, allowed):
@@ -108,6 +112,13 @@ class MeasureSettings:
         t = self.threshold_level
         if isinstance(t, bool) or not isinstance(t, (int, float, np.number)) or not 0 < t < 1:
             raise SettingsError(f"threshold_level={t!r}: must be a number between 0 and 1")
+        c = self.crop_px
+        if c is not None:
+            if (not isinstance(c, (tuple, list)) or len(c) != 4
+                    or any(isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0 for v in c)):
+                raise SettingsError(f"crop_px={c!r}: must be four whole numbers of pixels >= 0 "
+                                    "(top, bottom, left, right)")
+            object.__setattr__(self, "crop_px", tuple(int(v) for v in c))
         r = self.report_image_sections
         if isinstance(r, bool) or not isinstance(r, (int, np.integer)) or r < 0:
             raise SettingsError(f"report_image_sections={r!r}: must be an integer >= 0")

@@ -382,3 +382,18 @@ def test_a_batch_killed_midway_and_resumed_equals_an_uninterrupted_run(tmp_path,
     whole, resumed = pd.read_csv(tmp_path / "whole" / "summary.csv"), pd.read_csv(out / "summary.csv")
     assert len(resumed) == 6 and resumed["image"].is_unique
     pd.testing.assert_frame_equal(resumed, whole)
+
+
+def test_crop_measures_the_region_of_interest_only(tmp_path, rng):
+    px, _ = simulate_line_space(n_rows=256, n_cols=384, pitch_nm=64, cd_nm=32, sigma_nm=1.2, correlation_length_nm=8.0,
+                                roughness_exponent=0.6, settings=SEMSettings(dose_per_pixel=300, blur_nm=3.0), rng=rng)
+    dirty = px.copy()
+    dirty[:, :20] = px.max() * 3          # a bright label strip at the left that is not a line
+    path = write_micrograph(tmp_path / "label.tif", dirty, pixel_size_nm=1.0)
+    settings = MeasureSettings(n_resamples=100, model_resamples=0)
+    cropped = measure([path], settings=replace(settings, crop_px=(8, 8, 20, 0)))
+    by_hand = measure([Micrograph(pixels=np.rint(px[8:-8, 20:]), pixel_size_nm=1.0)], settings=settings)
+    assert cropped.images[0].analysis.summary == by_hand.images[0].analysis.summary
+    assert cropped.images[0].analysis.n_rows == 240
+    too_much = measure([path], settings=replace(settings, crop_px=(120, 130, 0, 0)))
+    assert "leaves less than 16 x 16 pixels" in too_much.failures[0][1]

@@ -11,7 +11,7 @@ BAD = {"pixel_size_nm": [0, -1.0, float("nan"), "1"], "detector": ["fit"], "prof
        "threshold_level": [0, 1.2], "detrend": ["cubic"], "psd_window": ["hamming"], "max_gap_rows": [-1],
        "max_invalid_fraction": [1.5], "n_resamples": [-1, 10.5], "confidence": [0, 1], "model_resamples": [-2],
        "seed": [-1], "calibrated_cnr": [-1], "noise_share_target": [0], "precision_target": [2],
-       "report_image_sections": [-1], "frames": [0, 2.5]}
+       "report_image_sections": [-1], "frames": [0, 2.5], "crop_px": [(1, 2, 3), (-1, 0, 0, 0), "abcd", (1.5, 0, 0, 0)]}
 
 
 def test_every_setting_has_a_bad_value_that_is_refused():
