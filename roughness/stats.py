@@ -355,6 +355,13 @@ class QuantityRoughness:
         return self.var_noise_nm2 / self.var_biased_nm2 if self.var_biased_nm2 > 0 else math.nan
 
     @property
+    def inflation_3sigma(self) -> float:
+        """By how much the noise inflates the biased 3-sigma: ``biased / unbiased - 1``
+        (``1 / sqrt(1 - noise_fraction) - 1``); NaN when the unbiased variance is not positive."""
+        u = self.sigma_unbiased_nm
+        return self.sigma_biased_nm / u - 1 if u > 0 else math.nan
+
+    @property
     def status(self) -> str:
         """``"ok"``; ``"noise_dominated"`` when noise is more than :data:`NOISE_DOMINATED_FRACTION`
         of the measured variance; ``"below_noise"`` (unbiased variance not positive) or

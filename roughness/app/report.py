@@ -253,11 +253,6 @@ _STATUS_WORDS = {
 }
 
 
-def _inflation(v) -> float:
-    u = v.sigma_unbiased_nm
-    return v.sigma_biased_nm / u - 1 if u > 0 else math.nan
-
-
 def _action(meas, g) -> str:
     """The one action that would most improve the numbers of group ``g``."""
     s, v = meas.settings, g.summary.edge
@@ -298,7 +293,7 @@ def _verdict(meas) -> str:
         label = f"<td>{esc(g.name)}</td>" if meas.comparison is not None else ""
         rows.append(f"<tr>{label}<td class='big'>{_fmt(3 * v.edge.sigma_unbiased_nm)} nm</td><td>{_ci(v.edge)}</td>"
                     f"<td class='big'>{_fmt(3 * v.width.sigma_unbiased_nm)} nm</td><td>{_ci(v.width)}</td>"
-                    f"<td>{_pct(v.edge.noise_fraction)} of the variance: raw 3&sigma; {_plus(_inflation(v.edge))}"
+                    f"<td>{_pct(v.edge.noise_fraction)} of the variance: raw 3&sigma; {_plus(v.edge.inflation_3sigma)}"
                     f"</td><td>{esc(_STATUS_WORDS.get(v.edge.status, v.edge.status))}</td></tr>")
     head = "<th>group</th>" if meas.comparison is not None else ""
     level = f"{100 * meas.settings.confidence:.0f}%"

@@ -7,6 +7,7 @@ the report (``Measurement.write``) only project them.
 """
 from __future__ import annotations
 
+import contextlib
 import glob
 import os
 import sys
@@ -201,6 +202,22 @@ _WORKER_DIED = ("the worker process measuring this image died (killed, or out of
                 "the other images were measured")
 
 
+@contextlib.contextmanager
+def _single_threaded_children():
+    """Set the thread counts of :data:`_THREAD_VARS` to 1 for processes started inside, then
+    restore them."""
+    saved = {v: os.environ.get(v) for v in _THREAD_VARS}
+    os.environ.update({v: "1" for v in _THREAD_VARS})
+    try:
+        yield
+    finally:
+        for v, value in saved.items():
+            if value is None:
+                os.environ.pop(v, None)
+            else:
+                os.environ[v] = value
+
+
 def _watch_parent(parent_pid):
     """Worker initializer: end this process when the batch's main process is gone, so that a
     killed batch leaves no worker blocked on its queue."""
@@ -231,9 +248,7 @@ def _run_pool(todo, workers, done):
     from concurrent.futures import as_completed
     from concurrent.futures.process import BrokenProcessPool
 
-    saved = {v: os.environ.get(v) for v in _THREAD_VARS}
-    os.environ.update({v: "1" for v in _THREAD_VARS})
-    try:
+    with _single_threaded_children():
         suspects = []
         with _pool(workers) as pool:
             futures = {pool.submit(_safe_measure, job): job for job in todo}
@@ -251,12 +266,6 @@ def _run_pool(todo, workers, done):
             except BrokenProcessPool:
                 res, fail = None, (_name(job[0], job[1]), _WORKER_DIED)
             done(job, res, fail)
-    finally:
-        for v, value in saved.items():
-            if value is None:
-                os.environ.pop(v, None)
-            else:
-                os.environ[v] = value
 
 
 def _run_dask(todo, address, workers, done):
@@ -268,10 +277,8 @@ def _run_dask(todo, address, workers, done):
         from dask.distributed import Client, LocalCluster, as_completed
     except ImportError:
         raise ValueError("dask: the optional extra is not installed (pip install 'quietedge[dask]')") from None
-    saved = {v: os.environ.get(v) for v in _THREAD_VARS}
-    os.environ.update({v: "1" for v in _THREAD_VARS})
     cluster = None
-    try:
+    with _single_threaded_children():
         if address == "local":
             cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                                    dashboard_address=None)
@@ -293,14 +300,8 @@ def _run_dask(todo, address, workers, done):
                 done(job, res, fail)
         finally:
             client.close()
-    finally:
-        if cluster is not None:
-            cluster.close()
-        for v, value in saved.items():
-            if value is None:
-                os.environ.pop(v, None)
-            else:
-                os.environ[v] = value
+            if cluster is not None:
+                cluster.close()
 
 
 def _safe_measure(args):

@@ -30,12 +30,6 @@ __all__ = ["summary_table", "edges_table", "psd_table", "failures_table", "group
 _NAN = math.nan
 
 
-def _inflation(v: QuantityRoughness) -> float:
-    """By how much the noise inflates the biased 3-sigma: biased / unbiased - 1."""
-    u = v.sigma_unbiased_nm
-    return v.sigma_biased_nm / u - 1 if u > 0 else _NAN
-
-
 def _stat_columns(summary, model, advice, xi_acf=_NAN) -> dict:
     row = {"n_lines": summary.n_lines, "n_edges": summary.n_edges,
            "cd_nm": summary.cd_nm, "cd_low_nm": summary.cd_low_nm, "cd_high_nm": summary.cd_high_nm}
@@ -52,7 +46,7 @@ def _stat_columns(summary, model, advice, xi_acf=_NAN) -> dict:
             f"{tag}_3sigma_unbiased_nm": 3 * v.sigma_unbiased_nm,
             f"{tag}_3sigma_unbiased_low_nm": 3 * v.sigma_unbiased_low_nm,
             f"{tag}_3sigma_unbiased_high_nm": 3 * v.sigma_unbiased_high_nm,
-            f"{tag}_noise_inflation": _inflation(v),
+            f"{tag}_noise_inflation": v.inflation_3sigma,
             f"{q}_status": v.status,
         })
     row["lr_correlation_biased"] = summary.lr_correlation_biased

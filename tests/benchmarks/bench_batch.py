@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 from scipy import optimize, special
 
-from edges import Micrograph, locate_edges
+from edges import locate_edges
 from edges.io import read_micrograph, write_micrograph
 from edges.render import SEMSettings
 from roughness.app.runner import measure

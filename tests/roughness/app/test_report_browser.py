@@ -52,7 +52,7 @@ class _Driver:
         req = urllib.request.Request(self.base + path, data=data, method=method,
                                      headers={"Content-Type": "application/json"})
         with urllib.request.urlopen(req, timeout=60) as r:
-            return json.loads(r.read())["value"] if path != "/session" else json.loads(r.read())["value"]
+            return json.loads(r.read())["value"]
 
     def s(self, method, path, body=None):
         return self.call(method, f"/session/{self.session}{path}", body)
