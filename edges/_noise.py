@@ -226,7 +226,8 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     model = med_off[win.edge][:, None] + med_gain[win.edge][:, None] * mu
     X = np.stack([-res.gain[:, None] * dmu, np.ones_like(mu), mu], axis=2) * win.mask[:, :, None]
     G = np.swapaxes(X, 1, 2) @ X
-    good_rows = ok & (np.abs(np.linalg.det(G)) > 0)
+    good_rows = ok & np.all(np.isfinite(G), axis=(1, 2))
+    good_rows[good_rows] = np.abs(np.linalg.det(G[good_rows])) > 0
     Ginv = np.zeros_like(G)
     Ginv[good_rows] = np.linalg.inv(G[good_rows])
     lev = np.einsum("nia,nab,nib->ni", X, Ginv, X)

@@ -6,14 +6,14 @@ at ``j * pixel_size_nm`` nanometres.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from ._noise import NoiseModel
 from ._precision import PrecisionStudy
 
-__all__ = ["Micrograph", "EdgeTraces", "REASONS", "REASON_CODES"]
+__all__ = ["Micrograph", "EdgeTraces", "REASONS", "REASON_CODES", "MAX_NON_FINITE_SHARE"]
 
 #: Reason codes for invalid rows of an edge (index = code stored in ``EdgeTraces.reason``).
 REASONS = (
@@ -25,8 +25,13 @@ REASONS = (
     "non_finite",       # NaN or infinite pixel in the window
     "too_close",        # neighbouring edge too near for a fit window of the minimum width
     "unconstrained",    # the row's position uncertainty exceeds its window's reach: no information
+    "outlier",          # the row's residual is far outside the noise model (a particle, a bridge, a scratch)
 )
 REASON_CODES = {name: code for code, name in enumerate(REASONS)}
+
+#: Largest share of NaN or infinite pixels an image may hold (missing or blanked rows, left out
+#: as failed rows); beyond it the image is refused.
+MAX_NON_FINITE_SHARE = 0.25
 
 
 @dataclass(frozen=True)
@@ -146,6 +151,12 @@ class EdgeTraces:
     @property
     def n_rows(self) -> int:
         return self.position_nm.shape[1]
+
+    def rows(self, start: int, stop: int) -> "EdgeTraces":
+        """The same traces restricted to rows ``start:stop``."""
+        sl = (slice(None), slice(start, stop))
+        return replace(self, position_nm=self.position_nm[sl], sigma_nm=self.sigma_nm[sl], valid=self.valid[sl],
+                       reason=self.reason[sl], reduced_chi2=self.reduced_chi2[sl], iterations=self.iterations[sl])
 
     def reason_counts(self) -> dict[str, int]:
         """Number of invalid rows per reason, over all edges."""

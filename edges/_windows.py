@@ -10,12 +10,28 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import ndimage
 
 from ._nanstats import nanmedian
 from ._types import REASON_CODES, Micrograph
 
 __all__ = ["EdgeWindows", "cut_windows", "saturation_level", "centre_lines", "fit_reason_codes",
-           "rows_usable"]
+           "rows_usable", "flag_outlier_rows"]
+
+#: Rows averaged when looking for a run of outlying residuals, and the threshold in standard
+#: errors of that average above the edge's median (a particle or bridge raises the residual of
+#: tens of rows together; an isolated noisy row does not reach it).
+OUTLIER_RUN_ROWS = 5
+OUTLIER_THRESHOLD_SE = 6.0
+#: ... and at least this many times the median: at high dose a profile the model does not
+#: follow exactly gives a residual that rises with the edge's excursion (to ~2x the median for
+#: a profile outside the model family, ~5x where a line pinches to 3 sd of its width and the
+#: rims of its edges overlap, in our tests); flagging those rows would drop the largest
+#: excursions and bias the roughness low.  A particle or bridge leaves far more.
+OUTLIER_MIN_RATIO = 6.0
+#: At most this share of an edge's rows is flagged as outliers; above it the residual is high
+#: everywhere (a profile the model does not follow), which is not a local defect.
+OUTLIER_MAX_SHARE = 0.2
 
 
 @dataclass(frozen=True)
@@ -145,3 +161,60 @@ def fit_reason_codes(fit, win: EdgeWindows, var_x, n_edges: int) -> np.ndarray:
     code[(code == 0) & ~(np.isfinite(var_x) & (var_x > 0))] = REASON_CODES["no_convergence"]
     code[(code == 0) & (var_x > np.maximum(win.last - win.first, 1) ** 2 / 4)] = REASON_CODES["unconstrained"]
     return code
+
+
+def flag_outlier_rows(reduced_chi2, code, dof):
+    """Rows whose fit residual is far outside the rest of their edge, given reason ``outlier``.
+
+    A particle on an edge, a bridge to the neighbouring line or a scratch adds signal the
+    edge model does not have: the residual of a run of rows rises together and their
+    positions are pulled (by nanometres) though the fits converge.  Per edge, the running
+    median of the reduced chi-square over :data:`OUTLIER_RUN_ROWS` rows (more where a row has
+    few degrees of freedom: 50 in all) is compared with its median
+    plus :data:`OUTLIER_THRESHOLD_SE` standard errors (the robust sd, MAD x 1.4826, but at least
+    the chi-square's own ``median * sqrt(2 / dof)``; 1.25 sd over the square root of the rows for
+    a running median);
+    and at least :data:`OUTLIER_MIN_RATIO` times the median; each run found is widened on both sides by half its length
+    (at least 1 row), where the defect's fainter margins still pull the position.
+
+    Parameters
+    ----------
+    reduced_chi2 : (n_edges, n_rows) ndarray
+    code : (n_edges, n_rows) ndarray of int
+        Reason codes so far (0 = valid); returned with outliers added.
+    dof : (n_edges, n_rows) ndarray
+        Degrees of freedom of each row's fit.
+    """
+    out = code.copy()
+    n_e, n_r = reduced_chi2.shape
+    if n_r < 4 * OUTLIER_RUN_ROWS:
+        return out
+    for e in range(n_e):
+        ok = (code[e] == 0) & np.isfinite(reduced_chi2[e])
+        if ok.sum() < 4 * OUTLIER_RUN_ROWS:
+            continue
+        r = reduced_chi2[e, ok]
+        med = float(np.median(r))
+        sd = max(1.4826 * float(np.median(np.abs(r - med))), med * np.sqrt(2.0 / float(np.median(dof[e, ok]))))
+        if not sd > 0:
+            continue
+        filled = np.where(ok, reduced_chi2[e], med)
+        # a running median: one wild row (a chi-square of few degrees of freedom has a long
+        # tail) does not make a run; its standard error is ~1.25 sd / sqrt(rows).  Over at least
+        # 50 degrees of freedom in all (fine-pitch windows hold only a few pixels).
+        dof_e = float(np.median(dof[e, ok]))
+        size = max(OUTLIER_RUN_ROWS, 2 * int(np.ceil(25.0 / max(dof_e, 1.0))) + 1)
+        smooth = ndimage.median_filter(filled, size=size, mode="constant", cval=med)
+        se = 1.25 * sd / np.sqrt(size)
+        core = ok & (smooth > max(med + OUTLIER_THRESHOLD_SE * se, OUTLIER_MIN_RATIO * med))
+        if not core.any():
+            continue
+        flagged = core.copy()
+        change = np.diff(np.r_[0, core.astype(int), 0])
+        for a, b in zip(np.flatnonzero(change == 1), np.flatnonzero(change == -1)):
+            grow = max(1, (b - a) // 2)
+            flagged[max(0, a - grow):min(n_r, b + grow)] = True
+        flagged &= code[e] == 0
+        if flagged.sum() <= OUTLIER_MAX_SHARE * ok.sum():
+            out[e, flagged] = REASON_CODES["outlier"]
+    return out

@@ -40,7 +40,8 @@ from ._noise import NoiseModel, estimate_noise, position_variance
 from ._solver import RowFit, solve_rows
 from ._twin import run_twin
 from ._types import REASON_CODES, EdgeTraces, Micrograph
-from ._windows import EdgeWindows, centre_lines, cut_windows, fit_reason_codes, rows_usable, saturation_level
+from ._windows import (EdgeWindows, centre_lines, cut_windows, fit_reason_codes, flag_outlier_rows, rows_usable,
+                       saturation_level)
 from .locate import LineLayout, locate_edges
 from .profiles import (PROFILE_MODELS, EdgeShape, ProfileTable, adjust_blur, fit_shape, fit_shift,
                        half_level_offset, is_physical, parametric_profile, smoothed_correction, tabulate)
@@ -440,6 +441,9 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
         final = _weighted_pass(frame, coarse, shaped, noise_pass, solve)
         noise, res, win = noise_pass.noise, final.fit, shaped.windows
         code = fit_reason_codes(res, win, final.var_px2, idx.size)
+        chi2_rows = res.rss / np.clip(res.n_used - 3, 1, None)
+        code = flag_outlier_rows(chi2_rows.reshape(idx.size, n_rows), code.reshape(idx.size, n_rows),
+                                 np.clip(res.n_used - 3, 1, None).reshape(idx.size, n_rows)).reshape(-1)
         valid = code == 0
         p = m.pixel_size_nm
         var_px2 = final.var_px2
@@ -449,7 +453,7 @@ def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window
             study = study.in_nm(p).expand(idx, n_all)
         pos[idx] = np.where(valid, res.x0 * p, np.nan).reshape(idx.size, n_rows)
         sig[idx] = np.where(valid, np.sqrt(np.abs(var_px2)) * p, np.nan).reshape(idx.size, n_rows)
-        chi2[idx] = (res.rss / np.clip(res.n_used - 3, 1, None)).reshape(idx.size, n_rows)
+        chi2[idx] = chi2_rows.reshape(idx.size, n_rows)
         iters[idx] = res.iterations.reshape(idx.size, n_rows)
         reason[idx] = code.reshape(idx.size, n_rows)
         cnr[idx] = _edge_cnr(res, valid, win.edge, idx.size, noise)

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._types import Micrograph
+from ._types import MAX_NON_FINITE_SHARE, Micrograph
 
 __all__ = ["MicrographError", "read_micrograph", "write_micrograph", "read_truth", "write_truth", "MAX_PIXELS"]
 
@@ -131,9 +131,10 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
         raise MicrographError(f"{path}: expected a 2-D grey-level image, got shape {data.shape}")
     saturation = float(np.iinfo(data.dtype).max) if np.issubdtype(data.dtype, np.integer) else None
     pixels = data.astype(np.float64)
-    if not np.all(np.isfinite(pixels)):
-        n_bad = int(np.count_nonzero(~np.isfinite(pixels)))
-        raise MicrographError(f"{path}: {n_bad} pixels are NaN or infinite")
+    n_bad = int(np.count_nonzero(~np.isfinite(pixels)))
+    if n_bad > MAX_NON_FINITE_SHARE * pixels.size:
+        raise MicrographError(f"{path}: {n_bad} pixels ({100 * n_bad / pixels.size:.0f}%) are NaN or infinite (at "
+                              f"most {100 * MAX_NON_FINITE_SHARE:.0f}% can be left out as failed rows)")
     size = pixel_size_nm if pixel_size_nm is not None else tag_size
     if size is None:
         raise MicrographError(f"{path}: no pixel size in the file; give it (pixel_size_nm / --pixel-size)")

@@ -13,7 +13,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import ndimage
 
-from ._types import Micrograph
+from ._types import MAX_NON_FINITE_SHARE, Micrograph
 
 __all__ = ["EdgeGuess", "LineLayout", "LocateError", "locate_edges", "information_bar_rows", "MIN_HALF_WINDOW_PX",
            "MAX_TILT_DEG", "POLARITIES", "ORIENTATIONS"]
@@ -125,8 +125,9 @@ def _validate(m: Micrograph) -> None:
         raise LocateError(f"{m.source}: the image holds only {levels} grey level(s) (blank, or binarised by a "
                           "threshold): edges cannot be placed within a pixel; use the original micrograph")
     bad = np.count_nonzero(~np.isfinite(px))
-    if bad > 0.01 * px.size:
-        raise LocateError(f"{m.source}: {bad} pixels ({100 * bad / px.size:.1f}%) are NaN or infinite")
+    if bad > MAX_NON_FINITE_SHARE * px.size:
+        raise LocateError(f"{m.source}: {bad} pixels ({100 * bad / px.size:.0f}%) are NaN or infinite (at most "
+                          f"{100 * MAX_NON_FINITE_SHARE:.0f}% can be left out as failed rows)")
 
 
 def information_bar_rows(pixels: np.ndarray, *, max_share: float = 1 / 3) -> tuple[int, int]:

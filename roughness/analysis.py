@@ -71,7 +71,7 @@ class AnalysisOptions:
 
     detrend: str = "linear"
     psd_window: str = "hann"
-    max_gap_rows: int = 3
+    max_gap_rows: int = 8
     max_invalid_fraction: float = 0.05
     n_resamples: int = 1000
     confidence: float = 0.95
@@ -478,6 +478,17 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
         where = " and ".join(w for w, k in ((f"{top} at the top", top), (f"{bottom} at the bottom", bottom)) if k)
         warnings.append(("information_bar", f"rows of an information bar were left out ({where}); the edges are "
                                             "measured on the rest of the image"))
+    first, stop = rough.row_range
+    if (first, stop) != (0, traces.n_rows):
+        warnings.append(("rows_cut", f"{traces.n_rows - (stop - first)} rows left out where most edges could not be "
+                                     f"fitted (a band across the image: a bar, scratch or missing rows); the "
+                                     f"statistics use rows {first}-{stop - 1}"))
+    excluded = rough.edge_exclusion[rough.edge_exclusion != ""]
+    if excluded.size:
+        why = ", ".join(f"{_EXCLUSION_WORDS.get(k, k)} {n}" for k, n in zip(*np.unique(excluded, return_counts=True)))
+        lost = len(traces.line_pairs()) - int(np.count_nonzero(np.isfinite(rough.lines.width_biased_nm2)))
+        warnings.append(("edges_excluded", f"{excluded.size} of {traces.n_edges} edges left out ({why})"
+                                           + (f"; {lost} line{'s have' if lost > 1 else ' has'} no width" if lost else "")))
     if traces.rotated:
         warnings.append(("scan_along_lines", "the lines run along the scan direction: noise correlated along the "
                                              "scan correlates neighbouring samples of each edge"))
@@ -493,6 +504,11 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
         excluded_edges=int(np.count_nonzero(rough.edge_exclusion != "")),
         reason_counts=tuple(traces.reason_counts().items()),
         advice=_advice(summary, model, length, rough.row_spacing_nm, options), warnings=tuple(warnings))
+
+
+#: Exclusion reasons of edges in a process engineer's words.
+_EXCLUSION_WORDS = {"too_many_invalid_rows": "too many rows failed", "gap_too_long": "a long run of failed rows",
+                    "too_close": "too close to a neighbour to fit"}
 
 
 def _warnings(summary: RoughnessSummary, model, traces: EdgeTraces, length_nm, n_invalid):

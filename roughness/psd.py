@@ -19,7 +19,7 @@ import numpy as np
 from scipy import signal
 
 __all__ = ["DETRENDS", "WINDOWS", "detrend_basis", "detrend", "window_values", "periodogram",
-           "cross_periodogram", "bridge_gaps", "PreparedTraces"]
+           "cross_periodogram", "bridge_gaps", "PreparedTraces", "choose_rows"]
 
 #: Detrend name -> polynomial order removed (None: nothing removed).
 DETRENDS = {"linear": 1, "mean": 0, "quadratic": 2, "none": None}
@@ -164,7 +164,67 @@ class PreparedTraces:
     bridged_rows: np.ndarray
 
 
-def bridge_gaps(position_nm, sigma_nm, valid, *, max_gap_rows: int = 3,
+def _bridgeable(valid_rows, max_gap_rows, max_invalid_fraction) -> bool:
+    bad = ~valid_rows
+    if not bad.any():
+        return True
+    if bad.mean() > max_invalid_fraction:
+        return False
+    change = np.diff(np.r_[0, bad.astype(int), 0])
+    return int(np.max(np.flatnonzero(change == -1) - np.flatnonzero(change == 1))) <= max_gap_rows
+
+
+def _runs(mask):
+    change = np.diff(np.r_[0, mask.astype(int), 0])
+    return list(zip(np.flatnonzero(change == 1), np.flatnonzero(change == -1)))
+
+
+def choose_rows(valid, candidate, *, max_gap_rows: int = 8, max_invalid_fraction: float = 0.05,
+                min_rows: int = 32) -> tuple[int, int]:
+    """The block of rows to analyse: all of them, or the longest stretch clear of a defect.
+
+    A band across the image (an information bar that does not reach the border, a scratch,
+    missing or corrupted rows, a stitched frame) fails many edges on the same rows; left in,
+    it excludes every edge.  Candidate blocks are all rows, and the longest runs of rows where
+    at least half, or all, of the ``candidate`` edges are valid (or in a gap short enough to
+    bridge); each scores the rows times
+    the edges usable in it (gaps bridgeable as in :func:`bridge_gaps`), and the best block of
+    at least ``min_rows`` rows is kept (all rows on a tie).  Returns ``(start, stop)``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> valid = np.ones((4, 200), bool); valid[:, 150:170] = False    # a band across the image
+    >>> choose_rows(valid, np.ones(4, bool))
+    (0, 150)
+    """
+    valid = np.asarray(valid, bool)
+    n_r = valid.shape[1]
+    cand = np.flatnonzero(candidate)
+    if cand.size == 0:
+        return 0, n_r
+    v = valid[cand]
+    covered = v.copy()              # valid, or inside a gap short enough to bridge
+    for row in covered:
+        for a, b in _runs(~row):
+            if b - a <= max_gap_rows and a > 0 and b < n_r:
+                row[a:b] = True
+    blocks = [(0, n_r)]
+    for share in (0.5, 1.0):
+        runs = _runs(covered.mean(axis=0) >= share - 1e-12)
+        if runs:
+            blocks.append(max(runs, key=lambda ab: ab[1] - ab[0]))
+    best, best_score = (0, n_r), -1
+    for a, b in blocks:
+        if b - a < min(min_rows, n_r):
+            continue
+        score = (b - a) * sum(_bridgeable(row[a:b], max_gap_rows, max_invalid_fraction) for row in v)
+        if score > best_score:
+            best, best_score = (int(a), int(b)), score
+    return best
+
+
+def bridge_gaps(position_nm, sigma_nm, valid, *, max_gap_rows: int = 8,
                 max_invalid_fraction: float = 0.05) -> PreparedTraces:
     """Bridge runs of at most ``max_gap_rows`` invalid rows by linear interpolation.
 

@@ -31,7 +31,7 @@ from edges._types import EdgeTraces
 
 from ._selfaffine import matern_acf
 from .noise import floor_shape, noise_floor_nm3, noise_variance_nm2
-from .psd import bridge_gaps, detrend_basis, periodogram
+from .psd import bridge_gaps, choose_rows, detrend_basis, periodogram
 from .psd import detrend as detrend_traces
 
 __all__ = ["LineVariances", "TraceSpectra", "ImageRoughness", "analyse_traces", "QuantityRoughness",
@@ -145,6 +145,9 @@ class ImageRoughness:
     detrend, window : str
     bridged_rows : int
         Invalid rows bridged by interpolation.
+    row_range : (int, int)
+        The rows analysed (start, stop) of the traces given: all of them, or the longest block
+        clear of a band of failed rows (:func:`roughness.psd.choose_rows`).
     """
 
     source: str
@@ -163,6 +166,7 @@ class ImageRoughness:
     detrend: str
     window: str
     bridged_rows: int
+    row_range: tuple = (0, 0)
 
     @property
     def frequency_per_nm(self) -> np.ndarray:
@@ -184,7 +188,7 @@ def _biased_var(z):
 
 
 def analyse_traces(traces: EdgeTraces, *, detrend: str = "linear", window: str = "hann",
-                   max_gap_rows: int = 3, max_invalid_fraction: float = 0.05) -> ImageRoughness:
+                   max_gap_rows: int = 8, max_invalid_fraction: float = 0.05) -> ImageRoughness:
     """Variances, PSDs and noise floors of every edge, width and centre of one image.
 
     Parameters
@@ -219,13 +223,16 @@ def analyse_traces(traces: EdgeTraces, *, detrend: str = "linear", window: str =
     >>> image.lines.n_lines, round(float(np.sqrt(np.nanmean(image.edge_var_biased_nm2))), 1)
     (1, 1.0)
     """
+    too_close = np.array(["too_close" in f for f in traces.edge_flags], bool)
+    first, stop = choose_rows(traces.valid, ~too_close, max_gap_rows=max_gap_rows,
+                              max_invalid_fraction=max_invalid_fraction)
+    if (first, stop) != (0, traces.n_rows):
+        traces = traces.rows(first, stop)
     prep = bridge_gaps(traces.position_nm, traces.sigma_nm, traces.valid, max_gap_rows=max_gap_rows,
                        max_invalid_fraction=max_invalid_fraction)
     usable = prep.usable.copy()
     exclusion = prep.exclusion.astype(object)
-    for e, flag in enumerate(traces.edge_flags):
-        if "too_close" in flag:
-            usable[e], exclusion[e] = False, "too_close"
+    usable[too_close], exclusion[too_close] = False, "too_close"
     dy, n = traces.row_spacing_nm, traces.n_rows
     x, s = prep.position_nm, prep.sigma_nm
     z = np.where(usable[:, None], detrend_traces(np.where(usable[:, None], x, 0.0), detrend), np.nan)
@@ -266,7 +273,7 @@ def analyse_traces(traces: EdgeTraces, *, detrend: str = "linear", window: str =
                           edge_var_noise_nm2=var_n, edge_line=traces.line_index, edge_side=traces.side,
                           edge_exclusion=exclusion.astype(str), lines=LineVariances(**u), edge=edge,
                           width=width, centre=centre, acf_edge_nm2=acf, detrend=detrend, window=window,
-                          bridged_rows=int(prep.bridged_rows.sum()))
+                          bridged_rows=int(prep.bridged_rows.sum()), row_range=(first, stop))
 
 
 # ------------------------------------------------------------------------------------------

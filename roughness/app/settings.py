@@ -76,7 +76,7 @@ class MeasureSettings:
     threshold_level: float = 0.5
     detrend: str = "linear"
     psd_window: str = "hann"
-    max_gap_rows: int = 3
+    max_gap_rows: int = 8
     max_invalid_fraction: float = 0.05
     n_resamples: int = 1000
     confidence: float = 0.95

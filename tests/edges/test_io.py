@@ -52,10 +52,14 @@ def test_bad_files_name_file_and_reason(tmp_path):
     tifffile.imwrite(tmp_path / "stack.tif", np.zeros((3, 8, 9), np.uint16), photometric="minisblack")
     with pytest.raises(MicrographError, match=r"stack\.tif: a stack of 3 frames"):
         read_micrograph(tmp_path / "stack.tif", pixel_size_nm=1)
+    # a few NaN/Inf pixels (missing rows) are read and left to the row fits; a mostly blank one is refused
     bad = np.ones((8, 8), np.float32)
-    bad[2, 3] = np.nan
+    bad[2, 3], bad[4, :] = np.nan, np.inf
     tifffile.imwrite(tmp_path / "nan.tif", bad)
-    with pytest.raises(MicrographError, match=r"nan\.tif: 1 pixels are NaN"):
+    assert np.count_nonzero(~np.isfinite(read_micrograph(tmp_path / "nan.tif", pixel_size_nm=1).pixels)) == 9
+    bad[:3] = np.nan
+    tifffile.imwrite(tmp_path / "nan.tif", bad)
+    with pytest.raises(MicrographError, match=r"nan\.tif: 32 pixels \(50%\) are NaN or infinite"):
         read_micrograph(tmp_path / "nan.tif", pixel_size_nm=1)
     with pytest.raises(MicrographError, match="no such file"):
         read_micrograph(tmp_path / "missing.tif", pixel_size_nm=1)
