@@ -130,6 +130,31 @@ def _validate(m: Micrograph) -> None:
                           f"{100 * MAX_NON_FINITE_SHARE:.0f}% can be left out as failed rows)")
 
 
+def _slanted_grating_deg(pixels) -> float | None:
+    """Angle (degrees from the columns) of a periodic pattern far from both image axes, or None.
+
+    The strongest peak of the windowed 2-D power spectrum away from zero frequency is a grating's
+    wave vector; it counts when it stands 100 times above the spectrum's median and points more
+    than :data:`MAX_TILT_DEG` away from both axes (lines at 45 degrees, say).
+    """
+    px = np.where(np.isfinite(pixels), pixels, np.nanmedian(pixels))
+    px = px - px.mean()
+    wy, wx = np.hanning(px.shape[0]), np.hanning(px.shape[1])
+    shape = tuple(min(4 * n, max(n, 1024)) for n in px.shape)      # zero-padded: a finer angle
+    power = np.abs(np.fft.fft2(px * wy[:, None] * wx[None, :], s=shape)) ** 2
+    fy = np.fft.fftfreq(shape[0])[:, None]
+    fx = np.fft.fftfreq(shape[1])[None, :]
+    radius = np.hypot(fy, fx)
+    power = np.where(radius > 2.5 / min(px.shape), power, 0.0)
+    k = np.unravel_index(int(np.argmax(power)), power.shape)
+    if not power[k] > 100 * np.median(power[power > 0]):
+        return None
+    # the wave vector's angle from the row axis is the lines' angle from the columns
+    angle = abs(math.degrees(math.atan2(float(fy[k[0], 0]), float(fx[0, k[1]])))) % 180
+    angle = min(angle, 180 - angle)
+    return angle if MAX_TILT_DEG < angle < 90 - MAX_TILT_DEG else None
+
+
 def information_bar_rows(pixels: np.ndarray, *, max_share: float = 1 / 3) -> tuple[int, int]:
     """Rows to cut from the top and bottom of an image: an information bar (a solid band, with or
     without text, as SEMs write along the bottom of a micrograph).
@@ -344,6 +369,11 @@ def locate_edges(micrograph: Micrograph, *, polarity: str = "auto", orientation:
     vals = heavy[finite]
     lo, hi = np.percentile(vals, 10), np.percentile(vals, 90)
     if not hi - lo > max(10 * prof_sd, 1e-12):
+        slanted = _slanted_grating_deg(micrograph.pixels if not horizontal else micrograph.pixels.T)
+        if slanted is not None:
+            raise LocateError(f"{micrograph.source}: the image holds lines at about {slanted:.0f} degrees to its "
+                              f"columns; up to {MAX_TILT_DEG:g} degrees from the columns or rows are measured: rotate "
+                              "the image (or re-image with the lines aligned) first")
         raise LocateError(f"{micrograph.source}: no lines found (profile contrast {hi - lo:.3g} against "
                           f"noise {prof_sd:.3g} grey levels)")
     angle = math.degrees(math.atan(tilt))

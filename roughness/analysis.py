@@ -415,8 +415,11 @@ def analyse_image(traces: EdgeTraces, options: AnalysisOptions = AnalysisOptions
         rows = ", ".join(f"{name} {100 * k / total:.0f}%" for name, k in sorted(counts.items(), key=lambda kv: -kv[1]))
         hint = (" (saturated rows: the detector clipped the image; lower the contrast or brightness)"
                 if counts.get("saturated", 0) > 0.5 * total else "")
+        if set(rough.edge_exclusion) == {"too_close"}:
+            hint = (" (the lines are too dense to resolve: a fit needs edges at least 4 px apart, a pitch of 8 px; "
+                    "image at a smaller pixel size)")
         raise ValueError(f"{traces.source}: no edge could be measured (" +
-                         ", ".join(sorted(set(rough.edge_exclusion) - {""})) +
+                         ", ".join(_EXCLUSION_WORDS.get(k, k) for k in sorted(set(rough.edge_exclusion) - {""})) +
                          (f"; failed rows: {rows}" if rows else "") + ")" + hint)
     rng = np.random.default_rng(options.seed)
     summary = summarize([rough.lines], n_resamples=options.n_resamples, confidence=options.confidence, rng=rng)

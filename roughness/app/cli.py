@@ -294,6 +294,11 @@ def main(argv=None) -> int:
             # numerical warnings of NaN rows and empty reductions are expected and accounted for
             # (reason codes, "not determined"); they are not for a process engineer's terminal
             warnings.simplefilter("ignore", RuntimeWarning)
+            # notes for the user (a colour file converted, a calibration overridden) as plain
+            # lines, without Python's file and line, for every file
+            warnings.simplefilter("always", UserWarning)
+            warnings.showwarning = (lambda message, category, filename, lineno, file=None, line=None:
+                                    print(f"quietedge: note: {message}", file=sys.stderr))
         try:
             if args.command == "simulate":
                 return _run_simulate(args)
