@@ -174,10 +174,23 @@ def build_parser() -> argparse.ArgumentParser:
         description="Line-edge and line-width roughness from SEM images, with the image noise taken out.")
     parser.add_argument("--debug", action="store_true",
                         help="show numerical warnings and the full traceback of an error")
+    parser.add_argument("--version", action="version", version=f"quietedge {_version()}")
     sub = parser.add_subparsers(dest="command", required=True)
     _add_simulate(sub)
     _add_measure(sub)
+    sub.add_parser("columns", help="print every column of every output table with its unit and meaning",
+                   description="The data dictionary of summary.csv, groups.csv, edges.csv, compare.csv, psd.csv "
+                               "and failures.csv.")
     return parser
+
+
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        return version("quietedge")
+    except PackageNotFoundError:      # a source tree that is not installed
+        return "unknown"
 
 
 def _settings(args) -> MeasureSettings:
@@ -306,6 +319,11 @@ def main(argv=None) -> int:
                 return _run_measure(args)
             if args.command == "compare":
                 return _run_compare(args)
+            if args.command == "columns":
+                from .columns import dictionary_text
+
+                print(dictionary_text())
+                return EXIT_OK
             return run_demo(args.out)
         except (ValueError, OSError) as exc:
             if args.debug:

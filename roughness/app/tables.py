@@ -256,6 +256,10 @@ def _store_results(meas, folder: Path) -> list:
     return listed
 
 
+#: Numbers in the CSV tables: six significant digits (far below any uncertainty quietedge
+#: reports; the full precision of a float would suggest digits that mean nothing).
+CSV_FLOAT_FORMAT = "%.6g"
+
 #: Every file a run may write at the top of its folder; settings.json (the completion marker) last.
 OUTPUT_FILES = ("summary.csv", "edges.csv", "psd.csv", "groups.csv", "compare.csv", "failures.csv", "report.html",
                 "settings.json")
@@ -276,13 +280,13 @@ def write_outputs(meas, out: Path, *, report: bool = True) -> Path:
     stored = _store_results(meas, out / RESULTS_FOLDER)
     tmp = Path(tempfile.mkdtemp(prefix=".writing-", dir=out))
     try:
-        summary_table(meas).to_csv(tmp / "summary.csv", index=False)
-        edges_table(meas).to_csv(tmp / "edges.csv", index=False)
-        psd_table(meas).to_csv(tmp / "psd.csv", index=False)
+        summary_table(meas).to_csv(tmp / "summary.csv", index=False, float_format=CSV_FLOAT_FORMAT)
+        edges_table(meas).to_csv(tmp / "edges.csv", index=False, float_format=CSV_FLOAT_FORMAT)
+        psd_table(meas).to_csv(tmp / "psd.csv", index=False, float_format=CSV_FLOAT_FORMAT)
         if meas.images:
-            groups_table(meas).to_csv(tmp / "groups.csv", index=False)
+            groups_table(meas).to_csv(tmp / "groups.csv", index=False, float_format=CSV_FLOAT_FORMAT)
         if meas.comparison is not None:
-            compare_table(meas).to_csv(tmp / "compare.csv", index=False)
+            compare_table(meas).to_csv(tmp / "compare.csv", index=False, float_format=CSV_FLOAT_FORMAT)
         if meas.failures:
             failures_table(meas).to_csv(tmp / "failures.csv", index=False)
         settings = {"settings": asdict(meas.settings), "versions": _versions(),

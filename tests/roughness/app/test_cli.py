@@ -69,3 +69,21 @@ def test_numerical_warnings_and_tracebacks_only_with_debug(tmp_path, capsys, mon
         warnings.simplefilter("always")
         main(["--debug"] + args)
     assert [w for w in seen if issubclass(w.category, RuntimeWarning)]      # shown with --debug
+
+
+def test_version_and_every_column_in_the_data_dictionary(capsys):
+    from roughness.app import tables
+    from roughness.app.columns import TABLE_FILES, describe
+
+    assert main(["--version"]) == 0
+    assert capsys.readouterr().out.startswith("quietedge ")
+    assert main(["columns"]) == 0
+    text = capsys.readouterr().out
+    for name, attr in TABLE_FILES.items():
+        for col in getattr(tables, attr):
+            unit, meaning = describe(col)            # KeyError: a column without an entry
+            assert meaning and f"  {col} " in text
+            # the unit in the name is the unit in the dictionary; no unit in the name, none there
+            expected = next((u for suffix, u in (("_per_nm", "1/nm"), ("_nm3", "nm^3"), ("_nm2", "nm^2"),
+                                                 ("_nm", "nm")) if col.endswith(suffix)), "")
+            assert unit == expected, col
