@@ -103,6 +103,7 @@ def _crlb(table, edge, u, gain, var, mask, a_scan):
     good = np.abs(np.linalg.det(fisher)) > 0
     out = np.full(u.shape[0], np.nan)
     out[good] = np.linalg.inv(fisher[good])[:, 0, 0]
+    out[~(out > 0)] = np.nan         # numerically singular (a window without the edge's slope)
     return out
 
 
@@ -226,7 +227,8 @@ def _run_twin(*, n_cols, reach_left_px, reach_right_px, centres_px, x0_px, offse
         v = float(np.dot(resid, resid) / max(g.sum() - 2, 1))
         c = float(np.mean(var_cov[g]))
         cov_sd[e], achieved[e], slope[e] = math.sqrt(c), math.sqrt(v), s
-        bound[e] = math.sqrt(float(np.nanmean(crlb[g])))
+        m = float(np.nanmean(crlb[g]))
+        bound[e] = math.sqrt(m) if m > 0 else math.nan       # no information left in the window: no bound
         bias[e] = float(np.mean(final.x0[g] - x_true[g]))
         num += v * g.sum()
         den += c * g.sum()

@@ -26,6 +26,7 @@ gain and offset.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -132,6 +133,14 @@ def tabulate(functions, half_range_px: float) -> ProfileTable:
     return ProfileTable(start_px=-half_range_px, step_px=GRID_STEP_PX, values=values, slopes=slopes)
 
 
+def _curve_fit(*args, **kwargs):
+    """scipy.optimize.curve_fit without its covariance warning: only the parameters are used
+    (a flat profile, where the covariance is undefined, is judged by the caller's checks)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", optimize.OptimizeWarning)
+        return optimize.curve_fit(*args, **kwargs)
+
+
 def _profile_model(uu, x0, a, b, s, h=0.0, d=0.0, w=1.0):
     """offset + gain * mu(u - x0); the peak offset d is measured from the step centre."""
     return a + b * parametric_profile(uu - x0, EdgeShape(s, h, d, w))
@@ -181,7 +190,7 @@ def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int
         p_init = [[0.0, 0.0, 1.0, start.blur_px] + ([start.peak_height, start.peak_offset_px,
                                                      start.peak_width_px] if kind != "step" else [])]
     else:
-        sp, _ = optimize.curve_fit(_profile_model, u, z, p0=[0.0, 0.0, 1.0, 2.0],
+        sp, _ = _curve_fit(_profile_model, u, z, p0=[0.0, 0.0, 1.0, 2.0],
                                    bounds=(step_lo, step_hi), maxfev=4000)
         if kind == "step":
             return EdgeShape(float(sp[3])), float(sp[0])
@@ -205,7 +214,7 @@ def fit_shape(u, z, *, kind: str, start: EdgeShape | None = None, peak_side: int
             upper = step_hi + [PEAK_HEIGHT_RANGE[1], 0.0 if peak_side < 0 else reach, width]
         p0 = np.clip(p0, np.add(lower, 1e-9), np.subtract(upper, 1e-9))
         try:
-            popt, _ = optimize.curve_fit(_profile_model, u, z, p0=p0, bounds=(lower, upper), maxfev=4000)
+            popt, _ = _curve_fit(_profile_model, u, z, p0=p0, bounds=(lower, upper), maxfev=4000)
         except RuntimeError:
             continue
         cost = np.sum((z - _profile_model(u, *popt)) ** 2)
@@ -239,7 +248,7 @@ def fit_shift(u, z, profile) -> float:
     """Step-centre shift of a normalised mean profile for a fixed shape ``profile(u)``."""
     ok = np.isfinite(z)
     u, z = u[ok], z[ok]
-    popt, _ = optimize.curve_fit(lambda uu, x0, a, b: a + b * profile(uu - x0), u, z, p0=[0.0, 0.0, 1.0])
+    popt, _ = _curve_fit(lambda uu, x0, a, b: a + b * profile(uu - x0), u, z, p0=[0.0, 0.0, 1.0])
     return float(popt[0])
 
 
