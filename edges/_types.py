@@ -159,9 +159,14 @@ class EdgeTraces:
                        reason=self.reason[sl], reduced_chi2=self.reduced_chi2[sl], iterations=self.iterations[sl])
 
     def reason_counts(self) -> dict[str, int]:
-        """Number of invalid rows per reason, over all edges."""
+        """Number of invalid rows per reason, over all edges (an invalid row without a reason code
+        is counted as ``unspecified``)."""
         codes, counts = np.unique(self.reason[~self.valid], return_counts=True)
-        return {REASONS[int(c)]: int(n) for c, n in zip(codes, counts)}
+        out: dict[str, int] = {}
+        for c, n in zip(codes, counts):
+            name = REASONS[int(c)] if int(c) != 0 else "unspecified"
+            out[name] = out.get(name, 0) + int(n)
+        return out
 
     def line_pairs(self) -> list[tuple[int, int]]:
         """(left edge index, right edge index) for every line that has both edges."""

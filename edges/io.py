@@ -14,7 +14,7 @@ import numpy as np
 
 from ._types import MAX_NON_FINITE_SHARE, Micrograph
 
-__all__ = ["MicrographError", "read_micrograph", "write_micrograph", "read_truth", "write_truth", "MAX_PIXELS"]
+__all__ = ["MicrographError", "FRAME_STACKS", "read_micrograph", "write_micrograph", "read_truth", "write_truth", "MAX_PIXELS"]
 
 _TIFF_SUFFIXES = {".tif", ".tiff"}
 _PNG_SUFFIXES = {".png"}
@@ -62,7 +62,12 @@ def _to_grey(data: np.ndarray, path: Path) -> np.ndarray:
     return data
 
 
-def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
+#: What to do with a multi-frame TIFF: refuse it (naming the frames), or average the frames
+#: (pixel by pixel, without drift correction: for frames already aligned by the SEM).
+FRAME_STACKS = ("refuse", "average")
+
+
+def read_micrograph(path, *, pixel_size_nm: float | None = None, frame_stack: str = "refuse") -> Micrograph:
     """Read an 8/16-bit or float TIFF or PNG as a :class:`Micrograph`.
 
     Parameters
@@ -70,6 +75,9 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
     path : str or Path
     pixel_size_nm : float, optional
         Pixel size in nm.  Overrides the TIFF resolution tags.  Required for PNG files.
+    frame_stack : {"refuse", "average"}
+        A TIFF holding several frames of one field: refused with the reason, or averaged pixel by
+        pixel (a ``UserWarning`` names the count; frames are not aligned first).
 
     Raises
     ------
@@ -85,6 +93,8 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
     >>> m.pixels.shape, round(m.pixel_size_nm, 3)
     ((32, 48), 0.8)
     """
+    if frame_stack not in FRAME_STACKS:
+        raise ValueError(f"frame_stack={frame_stack!r}: must be one of {', '.join(map(repr, FRAME_STACKS))}")
     path = Path(path)
     if not path.exists():
         raise MicrographError(f"{path}: no such file")
@@ -103,6 +113,10 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
                     raise MicrographError(f"{path}: the file declares {shape[1]} x {shape[0]} pixels, more than the "
                                           f"{MAX_PIXELS / 1e6:.0f}-megapixel limit (a damaged or hostile header, "
                                           "or a stitched field: crop it first)")
+                n_pages = len(tif.pages)
+                if n_pages > 1 and n_px * n_pages > 4 * MAX_PIXELS:
+                    raise MicrographError(f"{path}: {n_pages} frames of {shape[1]} x {shape[0]} pixels, more than "
+                                          f"{4 * MAX_PIXELS / 1e6:.0f} megapixels in all: split the stack first")
                 data = tif.asarray()
                 tag_size = _pixel_size_from_tiff_tags(tif)
         elif suffix in _PNG_SUFFIXES:
@@ -123,13 +137,18 @@ def read_micrograph(path, *, pixel_size_nm: float | None = None) -> Micrograph:
     if data.size == 0:
         raise MicrographError(f"{path}: image has no pixels")
     data = _to_grey(data, path)
+    saturation = float(np.iinfo(data.dtype).max) if np.issubdtype(data.dtype, np.integer) else None
     if data.ndim == 3 and suffix in _TIFF_SUFFIXES:
-        raise MicrographError(f"{path}: a stack of {data.shape[0]} frames; quietedge measures one frame per file: save "
-                              "the frames as separate files (each is then measured), or average them in the SEM "
-                              "software and give the count with --frames")
+        if frame_stack == "refuse":
+            raise MicrographError(f"{path}: a stack of {data.shape[0]} frames; quietedge measures one frame per file: "
+                                  "save the frames as separate files (each is then measured), or average them "
+                                  "(--frame-stack average, frames already aligned) and give the total with --frames")
+        n_frames = data.shape[0]
+        data = data.astype(np.float64).mean(axis=0)
+        warnings.warn(f"{path}: {n_frames} frames averaged pixel by pixel (not aligned first); give the total "
+                      "frames with --frames for the frames advice", UserWarning, stacklevel=2)
     if data.ndim != 2:
         raise MicrographError(f"{path}: expected a 2-D grey-level image, got shape {data.shape}")
-    saturation = float(np.iinfo(data.dtype).max) if np.issubdtype(data.dtype, np.integer) else None
     pixels = data.astype(np.float64)
     n_bad = int(np.count_nonzero(~np.isfinite(pixels)))
     if n_bad > MAX_NON_FINITE_SHARE * pixels.size:

@@ -12,6 +12,7 @@ import warnings
 from dataclasses import fields
 from pathlib import Path
 
+from edges.io import FRAME_STACKS
 from edges.locate import ORIENTATIONS, POLARITIES
 from edges.profiles import PROFILE_MODELS
 from edges.render import SEMSettings
@@ -128,6 +129,8 @@ def _add_measure_options(p):
     p.add_argument("--crop-px", type=int, nargs=4, dest="crop_px", default=None,
                    metavar=("TOP", "BOTTOM", "LEFT", "RIGHT"),
                    help="pixels cut from each side of every image before measuring (a region of interest)")
+    p.add_argument("--frame-stack", choices=FRAME_STACKS, dest="frame_stack", default=None,
+                   help="a TIFF holding several frames: refuse it (default) or average its frames (already aligned)")
     p.add_argument("--frames", type=int, default=None,
                    help=f"frames averaged into each image as acquired, for the frames-needed advice (default {d.frames})")
     p.add_argument("--noise-share-target", type=float, dest="noise_share_target", default=None, metavar="FRACTION",

@@ -30,6 +30,9 @@ __all__ = ["ImageResult", "Measurement", "measure", "expand_inputs", "IMAGE_SUFF
 #: Listed from folders; JPEG files are listed so that each is reported as refused, with the reason.
 IMAGE_SUFFIXES = (".tif", ".tiff", ".png", ".jpg", ".jpeg")
 _PREVIEW_ROWS = 384
+#: Seconds a Dask cluster may have no worker (and finish nothing) before the images still waiting
+#: are reported as not measured, instead of waiting for ever.
+DASK_WORKERLESS_S = 120.0
 
 
 @dataclass(frozen=True)
@@ -160,7 +163,7 @@ def _read(item, name, settings):
         if px.ndim != 2 or px.size == 0:
             raise MicrographError(f"{name}: expected a non-empty 2-D array, got shape {px.shape}")
         return Micrograph(pixels=px, pixel_size_nm=settings.pixel_size_nm, source=name)
-    return read_micrograph(item, pixel_size_nm=settings.pixel_size_nm)
+    return read_micrograph(item, pixel_size_nm=settings.pixel_size_nm, frame_stack=settings.frame_stack)
 
 
 def detect_edges(micrograph: Micrograph, settings: MeasureSettings) -> EdgeTraces:
@@ -274,7 +277,7 @@ def _run_dask(todo, address, workers, done):
     image finishes.  The work per image is :func:`_safe_measure`, the same as in this process.
     File paths must be readable by the workers (a shared file system)."""
     try:
-        from dask.distributed import Client, LocalCluster, as_completed
+        from dask.distributed import Client, LocalCluster, wait
     except ImportError:
         raise ValueError("dask: the optional extra is not installed (pip install 'quietedge[dask]')") from None
     cluster = None
@@ -291,17 +294,33 @@ def _run_dask(todo, address, workers, done):
         try:
             futures = client.map(_safe_measure, todo, pure=False)
             jobs = {f.key: job for f, job in zip(futures, todo)}
-            for fut in as_completed(futures):
-                job = jobs[fut.key]
+            pending, idle_since = set(futures), time.monotonic()
+            while pending:
                 try:
-                    res, fail = fut.result()
-                except Exception as exc:           # a worker lost or killed: that image's failure
-                    res, fail = None, (_name(job[0], job[1]), f"the Dask worker measuring this image failed ({exc})")
-                done(job, res, fail)
+                    finished = wait(pending, timeout=5, return_when="FIRST_COMPLETED").done
+                except TimeoutError:
+                    finished = set()
+                if finished:
+                    idle_since = time.monotonic()
+                elif (time.monotonic() - idle_since > DASK_WORKERLESS_S
+                      and not client.scheduler_info().get("workers")):
+                    for fut in pending:            # no worker left to run them: say so, keep the rest
+                        job = jobs[fut.key]
+                        done(job, None, (_name(job[0], job[1]), "not measured: the Dask cluster has had no "
+                                         f"worker for {DASK_WORKERLESS_S:.0f} s"))
+                    break
+                for fut in finished:
+                    pending.discard(fut)
+                    job = jobs[fut.key]
+                    try:
+                        res, fail = fut.result()
+                    except Exception as exc:           # a worker lost or killed: that image's failure
+                        res, fail = None, (_name(job[0], job[1]), f"the Dask worker measuring this image failed ({exc})")
+                    done(job, res, fail)
         finally:
-            client.close()
+            client.close(timeout=30)
             if cluster is not None:
-                cluster.close()
+                cluster.close(timeout=30)
 
 
 def _safe_measure(args):

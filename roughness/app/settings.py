@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
+from edges.io import FRAME_STACKS
 from edges.locate import ORIENTATIONS, POLARITIES
 from edges.profiles import PROFILE_MODELS
 
@@ -65,6 +66,8 @@ class MeasureSettings:
     crop_px : (top, bottom, left, right) or None
         Pixels cut from each side of every image before anything else (a region of interest:
         a label, a damaged corner, a second pattern); None keeps the whole image.
+    frame_stack : {"refuse", "average"}
+        A multi-frame TIFF: refused with the reason, or its frames averaged (already aligned).
     """
 
     pixel_size_nm: float | None = None
@@ -88,6 +91,7 @@ class MeasureSettings:
     report_image_sections: int = 12
     frames: int = 1
     crop_px: tuple | None = None
+    frame_stack: str = "refuse"
 
     def __post_init__(self):
         def choice(name, allowed):
@@ -99,6 +103,7 @@ class MeasureSettings:
         choice("profile_model", PROFILE_MODELS)
         choice("polarity", POLARITIES)
         choice("orientation", ORIENTATIONS)
+        choice("frame_stack", FRAME_STACKS)
         px = self.pixel_size_nm
         if px is not None and (isinstance(px, bool) or not isinstance(px, (int, float, np.number))
                                or not math.isfinite(px) or not px > 0):

@@ -103,6 +103,13 @@ def test_jpeg_and_frame_stacks_are_refused_with_the_reason(tmp_path, rng):
     tifffile.imwrite(stack, rng.integers(0, 4000, (5, 64, 80)).astype(np.uint16))
     with pytest.raises(MicrographError, match=r"stack\.tif: a stack of 5 frames"):
         read_micrograph(stack, pixel_size_nm=1.0)
+    frames = tifffile.imread(stack)
+    with pytest.warns(UserWarning, match=r"stack\.tif: 5 frames averaged"):
+        m = read_micrograph(stack, pixel_size_nm=1.0, frame_stack="average")
+    np.testing.assert_allclose(m.pixels, frames.astype(float).mean(axis=0), rtol=1e-12)   # numpy's own mean
+    assert m.saturation_level == 65535.0
+    with pytest.raises(ValueError, match="frame_stack='sum'"):
+        read_micrograph(stack, pixel_size_nm=1.0, frame_stack="sum")
 
 
 def test_sixteen_bit_png_keeps_its_levels(tmp_path, rng):

@@ -101,7 +101,7 @@ def test_image_analysis_is_frozen_and_typed(rng):
 def test_an_image_without_usable_edges_is_refused_with_the_reason(rng):
     t = _traces(rng)
     t = dataclasses.replace(t, valid=np.zeros_like(t.valid))
-    with pytest.raises(ValueError, match="no edge could be measured .*too_many_invalid_rows"):
+    with pytest.raises(ValueError, match="no edge could be measured .*too many rows failed; failed rows: unspecified 100%"):
         analyse_image(t, OPTIONS)
 
 

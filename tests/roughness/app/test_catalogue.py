@@ -123,3 +123,40 @@ def test_absurd_pixel_sizes_are_usage_errors(tmp_path, rng, capsys, value):
     code = main(["measure", str(tmp_path / "in" / fn), "--out", str(tmp_path / "out"), f"--pixel-size={value}"])
     err = capsys.readouterr().err
     assert code == 2 and "pixel" in err.lower() and "Traceback" not in err
+
+
+def test_a_frame_stack_is_averaged_when_asked(tmp_path, rng, capsys):
+    import tifffile
+
+    counts = _u8(_grating(rng)).astype(float) / 2            # 10-110 counts per pixel
+    frames = np.stack([rng.poisson(counts) for _ in range(4)]).astype(np.uint16)   # four shots of one field
+    (tmp_path / "in").mkdir()
+    tifffile.imwrite(tmp_path / "in" / "stack.tif", frames, photometric="minisblack")
+    code = main(["measure", str(tmp_path / "in" / "stack.tif"), "--out", str(tmp_path / "out"), "--pixel-size", "1",
+                 "--no-report", "--frame-stack", "average"])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    assert re.search(r"note: .*stack\.tif: 4 frames averaged", err), err
+    assert "all images: LER 3sigma unbiased" in out
+
+
+def test_the_whole_catalogue_in_one_batch_with_a_good_image(tmp_path, rng, capsys):
+    import pandas as pd
+    import tifffile
+
+    folder = tmp_path / "in"
+    folder.mkdir()
+    status = {_write(folder, entry, rng): (code, says) for entry, code, says in CATALOGUE}
+    tifffile.imwrite(folder / "good.tif", _u8(_grating(rng)))
+    status["good.tif"] = (0, None)
+    status["full.tif"] = (0, None)          # written beside the truncated copy: a good image too
+    code = main(["measure", str(folder), "--out", str(tmp_path / "out"), "--pixel-size", "1", "--no-report"])
+    capsys.readouterr()
+    assert code == 3                        # some images failed, the rest were measured
+    failures = pd.read_csv(tmp_path / "out" / "failures.csv")
+    failed = dict(zip(failures["image"].map(lambda s: s.split("/")[-1]), failures["reason"]))
+    assert set(failed) == {fn for fn, (c, _) in status.items() if c == 3}
+    for fn, reason in failed.items():
+        assert re.search(status[fn][1], reason), (fn, reason)
+    measured = set(pd.read_csv(tmp_path / "out" / "summary.csv")["image"].map(lambda s: s.split("/")[-1]))
+    assert measured == {fn for fn, (c, _) in status.items() if c == 0}

@@ -357,6 +357,19 @@ def test_a_local_dask_cluster_gives_the_tables_of_one_process(tmp_path, rng):
     pd.testing.assert_frame_equal(groups_table(one), groups_table(cluster), rtol=1e-5)
 
 
+def test_a_dask_cluster_without_workers_fails_the_images_instead_of_waiting(tmp_path, rng, monkeypatch):
+    distributed = pytest.importorskip("dask.distributed", reason="the optional extra quietedge[dask] is not installed")
+    import roughness.app.runner as runner
+
+    monkeypatch.setattr(runner, "DASK_WORKERLESS_S", 1.0)
+    truths = _write_images(tmp_path / "in", rng, doses=[300, 300], n_rows=64, n_cols=160)
+    with distributed.LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=None) as empty:
+        meas = measure(sorted(truths), settings=MeasureSettings(n_resamples=100, model_resamples=0),
+                       dask=empty.scheduler_address)
+    assert not meas.images and len(meas.failures) == 2
+    assert all("no worker for 1 s" in why for _, why in meas.failures)
+
+
 @pytest.mark.slow
 def test_a_batch_killed_midway_and_resumed_equals_an_uninterrupted_run(tmp_path, rng):
     import signal

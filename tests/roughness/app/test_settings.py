@@ -11,7 +11,8 @@ BAD = {"pixel_size_nm": [0, -1.0, float("nan"), "1"], "detector": ["fit"], "prof
        "threshold_level": [0, 1.2], "detrend": ["cubic"], "psd_window": ["hamming"], "max_gap_rows": [-1],
        "max_invalid_fraction": [1.5], "n_resamples": [-1, 10.5], "confidence": [0, 1], "model_resamples": [-2],
        "seed": [-1], "calibrated_cnr": [-1], "noise_share_target": [0], "precision_target": [2],
-       "report_image_sections": [-1], "frames": [0, 2.5], "crop_px": [(1, 2, 3), (-1, 0, 0, 0), "abcd", (1.5, 0, 0, 0)]}
+       "report_image_sections": [-1], "frames": [0, 2.5], "crop_px": [(1, 2, 3), (-1, 0, 0, 0), "abcd", (1.5, 0, 0, 0)],
+       "frame_stack": ["sum", None, 2]}
 
 
 def test_every_setting_has_a_bad_value_that_is_refused():
@@ -24,6 +25,7 @@ def test_every_setting_has_a_bad_value_that_is_refused():
 
 def test_argparse_choices_come_from_the_same_vocabularies():
     from edges.locate import ORIENTATIONS, POLARITIES
+    from edges.io import FRAME_STACKS
     from edges.profiles import PROFILE_MODELS
     from roughness.app.settings import DETECTORS
     from roughness.psd import DETRENDS, WINDOWS
@@ -31,7 +33,8 @@ def test_argparse_choices_come_from_the_same_vocabularies():
     measure = build_parser()._subparsers._group_actions[0].choices["measure"]
     choices = {a.dest: tuple(a.choices) for a in measure._actions if a.choices}
     assert choices == {"detector": DETECTORS, "profile_model": PROFILE_MODELS, "detrend": tuple(DETRENDS),
-                       "psd_window": WINDOWS, "polarity": POLARITIES, "orientation": ORIENTATIONS}
+                       "psd_window": WINDOWS, "polarity": POLARITIES, "orientation": ORIENTATIONS,
+                       "frame_stack": FRAME_STACKS}
 
 
 @pytest.mark.parametrize("text,needle", [('window_px = "31"', "window_px='31'"), ('detrend = "cubic"', "detrend="),
