@@ -230,7 +230,8 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
     good_rows[good_rows] = np.abs(np.linalg.det(G[good_rows])) > 0
     Ginv = np.zeros_like(G)
     Ginv[good_rows] = np.linalg.inv(G[good_rows])
-    lev = np.einsum("nia,nab,nib->ni", X, Ginv, X)
+    XG = X @ Ginv
+    lev = np.einsum("nia,nia->ni", XG, X)
     keep = 1.0 - lev
     if scan_filter > 0:
         # E[r_i^2] = [(I - H) R (I - H)]_ii var_i for noise correlated as R = a^|i-j|: the fit's
@@ -238,8 +239,8 @@ def _variance_law(win, res, ok, table, scan_filter=0.0):
         lag = np.abs(np.subtract.outer(np.arange(X.shape[1]), np.arange(X.shape[1])))
         R = scan_filter ** lag
         XtR = np.einsum("nwa,wv->nav", X, R)
-        hr = np.einsum("nia,nab,nbi->ni", X, Ginv, XtR)
-        hrh = np.einsum("nia,nab,nbc,ncd,nid->ni", X, Ginv, XtR @ X, Ginv, X)
+        hr = np.einsum("nib,nbi->ni", XG, XtR)
+        hrh = np.einsum("nid,nid->ni", XG @ (XtR @ X) @ Ginv, X)
         keep = 1.0 - 2.0 * hr + hrh
     with np.errstate(divide="ignore", invalid="ignore"):
         r2 = (win.y - fitted) ** 2 / keep

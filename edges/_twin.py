@@ -99,7 +99,7 @@ def _crlb(table, edge, u, gain, var, mask, a_scan):
         cov = np.where(mask[:, :, None] & mask[:, None, :], cov, np.eye(w)[None] * (d[:, :, None] ** 2))
         fisher = np.swapaxes(X, 1, 2) @ np.linalg.solve(cov, X)
     else:
-        fisher = np.einsum("nia,ni,nib->nab", X, np.where(mask, 1.0 / var, 0.0), X)
+        fisher = np.swapaxes(X * np.where(mask, 1.0 / var, 0.0)[:, :, None], 1, 2) @ X
     good = np.abs(np.linalg.det(fisher)) > 0
     out = np.full(u.shape[0], np.nan)
     out[good] = np.linalg.inv(fisher[good])[:, 0, 0]

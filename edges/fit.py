@@ -43,7 +43,7 @@ from ._types import REASON_CODES, EdgeTraces, Micrograph
 from ._windows import (EdgeWindows, centre_lines, cut_windows, fit_reason_codes, flag_outlier_rows, rows_usable,
                        saturation_level)
 from .locate import LineLayout, locate_edges
-from .profiles import (PROFILE_MODELS, EdgeShape, ProfileTable, adjust_blur, fit_shape, fit_shift,
+from .profiles import (PROFILE_MODELS, EdgeShape, ProfileTable, adjust_blur, fit_shape,
                        half_level_offset, is_physical, parametric_profile, smoothed_correction, tabulate)
 
 __all__ = ["fit_edges", "LOW_CONTRAST_CNR"]
@@ -305,8 +305,7 @@ def _shapes(centres, mean, kind, groups, reach_px, starts=None, blur_change_px2=
                                   max_peak_offset_px=max_off)
             own = np.zeros(members.size)
             for _ in range(2):   # re-pool with each edge moved onto the common reference
-                prof = lambda u, sh=fitted: parametric_profile(u, sh)
-                own = np.array([_safe_shift(centres, mean[e], prof) for e in members])
+                own = _shifts(centres, mean[members], fitted)
                 pooled = nanmean([np.interp(centres, centres - sh_, mean[e], left=np.nan, right=np.nan)
                                      for e, sh_ in zip(members, own)], axis=0)
                 fitted, extra = fit_shape(centres, pooled, kind=shape_kind, start=fitted, peak_side=int(g),
@@ -342,11 +341,20 @@ def _shapes(centres, mean, kind, groups, reach_px, starts=None, blur_change_px2=
     return funcs, shapes, shifts, fallback
 
 
-def _safe_shift(centres, z, profile):
-    try:
-        return fit_shift(centres, z, profile)
-    except (RuntimeError, ValueError):
-        return 0.0
+def _shifts(centres, z, shape: EdgeShape) -> np.ndarray:
+    """Step-centre shift of each normalised mean profile (rows of ``z``, NaN where unknown) for
+    the fixed ``shape``: the least-squares x0 of ``a + b mu(u - x0)``, all edges in one batched
+    solve (the same optimum as :func:`edges.profiles.fit_shift`'s curve_fit, to the solver's
+    tolerance); 0 where a profile has no solution (flat, or too few bins)."""
+    ok = np.isfinite(z)
+    n = z.shape[0]
+    table = tabulate([lambda u, derivative=False: parametric_profile(u, shape, derivative=derivative)],
+                     float(np.max(np.abs(centres))) + 4.0)
+    fit = solve_rows(np.where(ok, z, 0.0), np.broadcast_to(np.asarray(centres, float), z.shape).copy(),
+                     ok.astype(float), table, np.zeros(n, np.intp), np.zeros(n), max_iterations=50,
+                     tolerance_px=1e-6, chunk_rows=4096)
+    good = fit.converged & np.isfinite(fit.x0) & (ok.sum(axis=1) > 3)
+    return np.where(good, fit.x0, 0.0)
 
 
 def fit_edges(micrograph: Micrograph, *, profile_model: str = "template", window_px: int = 31,

@@ -106,22 +106,46 @@ class ProfileTable:
         Gauss-Newton steps see a smooth objective.
         """
         n_grid = self.values.shape[1]
-        t = (u - self.start_px) / self.step_px
-        np.clip(t, 0.0, n_grid - 1.000001, out=t)
-        i = t.astype(np.intp)
-        f = t - i
-        flat = i + (edge * n_grid)[:, None]
-        v, sl = self.values.ravel(), self.slopes.ravel()
-        v0 = v[flat]
-        dv = v[flat + 1] - v0
-        s0 = sl[flat] * self.step_px
-        s1 = sl[flat + 1] * self.step_px
-        f2 = f * f
-        mu = v0 + f2 * (3.0 - 2.0 * f) * dv + f * (1.0 - f) * ((1.0 - f) * s0 - f * s1)
+        f = u - self.start_px
+        f *= 1.0 / self.step_px
+        np.clip(f, 0.0, n_grid - 1.000001, out=f)
+        i = f.astype(np.intp)
+        f -= i                                   # the fraction of the interval
+        i += (edge * n_grid)[:, None]
+        # the interval's power-basis coefficients (np.take: faster than fancy indexing), Horner
+        c0, c1, c2, c3 = (np.take(c, i) for c in self._coefficients)
+        mu = c3 * f
+        mu += c2
+        mu *= f
+        mu += c1
+        mu *= f
+        mu += c0
         if not with_slope:
             return mu, None
-        dmu = (6.0 * f * (1.0 - f) * dv + (1.0 - f) * (1.0 - 3.0 * f) * s0 + f * (3.0 * f - 2.0) * s1)
-        return mu, dmu / self.step_px
+        c3 *= 3.0
+        c3 *= f
+        c2 *= 2.0
+        c3 += c2
+        c3 *= f
+        c3 += c1
+        c3 *= 1.0 / self.step_px
+        return mu, c3
+
+    @property
+    def _coefficients(self) -> tuple:
+        """Four contiguous (n_edges * n_grid,) arrays: the power-basis coefficients of each
+        interval's cubic Hermite polynomial in the fraction f of the interval (the last grid
+        point holds the end value)."""
+        cached = self.__dict__.get("_coef")
+        if cached is None:
+            v, sl = self.values, self.slopes * self.step_px
+            dv = np.diff(v, axis=1, append=v[:, -1:])
+            s0 = sl
+            s1 = np.concatenate([sl[:, 1:], sl[:, -1:]], axis=1)
+            cached = tuple(np.ascontiguousarray(a, dtype=np.float64).ravel()
+                           for a in (v, s0, 3.0 * dv - 2.0 * s0 - s1, s0 + s1 - 2.0 * dv))
+            object.__setattr__(self, "_coef", cached)
+        return cached
 
 
 def tabulate(functions, half_range_px: float) -> ProfileTable:

@@ -255,8 +255,11 @@ def test_precision_study_bound_matches_the_renderers_fisher_information(rng, cas
     study = et.precision
     twin = math.sqrt(np.nanmean(study.crlb_sd ** 2)) / s.pixel_size_nm
     assert twin == pytest.approx(math.sqrt(bound), rel=0.05)
-    # a detector that attains the bound at high contrast-to-noise (efficiency within 10%)
-    assert np.all(np.abs(study.efficiency - 1) < 0.1)
+    # a detector that attains the bound at high contrast-to-noise: each edge's efficiency is a
+    # variance ratio from ~1900 twin rows (se ~3.5% with the heavier tails at 5 counts; measured
+    # 0.89-1.06 over six seeds), so 15% per edge (~4 se) and 5% pooled over the edges (~3 se)
+    assert np.all(np.abs(study.efficiency - 1) < 0.15)
+    assert abs(np.mean(study.efficiency) - 1) < 0.05
     assert np.all(np.abs(study.shrinkage - 1) < 0.03)
 
 
@@ -293,3 +296,21 @@ def test_twin_corrects_the_covariance_at_two_counts_per_pixel(rng):
     assert et.precision.applied_calibration > 1.2
     assert abs(math.log(calibrated / emp)) < abs(math.log(covariance / emp))
     assert 0.68 < emp / calibrated < 1.25
+
+
+def test_batched_profile_shifts_equal_scipy_curve_fit(rng):
+    # the per-edge shift of a mean profile for a fixed shape, solved for all edges at once by the
+    # batched solver, against scipy.optimize.curve_fit one edge at a time (fit_shift); both reach
+    # the least-squares optimum, up to the table's interpolation (~1e-5 px)
+    from edges.fit import _shifts
+    from edges.profiles import EdgeShape, fit_shift, parametric_profile
+
+    u = np.arange(-12, 12.01, 0.25)
+    shape = EdgeShape(1.8, 0.8, 1.0, 1.2)
+    z = np.stack([0.05 + 0.9 * parametric_profile(u - t, EdgeShape(2.0, 0.7, 1.1, 1.3))
+                  + 0.01 * rng.standard_normal(u.size) for t in rng.uniform(-1.5, 1.5, 6)])
+    z[2, :10] = np.nan                                          # a profile cut by its window
+    ours = _shifts(u, z, shape)
+    scipy_fit = [fit_shift(u, zz, lambda v: parametric_profile(v, shape)) for zz in z]
+    np.testing.assert_allclose(ours, scipy_fit, atol=2e-4)
+    assert np.all(_shifts(u, np.ones((2, u.size)), shape) == 0.0)   # a flat profile has no shift
