@@ -14,7 +14,8 @@ import numpy as np
 
 from ._types import MAX_NON_FINITE_SHARE, Micrograph
 
-__all__ = ["MicrographError", "FRAME_STACKS", "read_micrograph", "write_micrograph", "read_truth", "write_truth", "MAX_PIXELS"]
+__all__ = ["MicrographError", "FRAME_STACKS", "read_micrograph", "write_micrograph", "read_truth", "write_truth",
+           "MAX_PIXELS"]
 
 _TIFF_SUFFIXES = {".tif", ".tiff"}
 _PNG_SUFFIXES = {".png"}
